@@ -1,0 +1,1 @@
+"""pamjoint's controllers: feedforward, feedback and trial-to-trial learners (no model equations)."""

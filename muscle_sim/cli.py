@@ -1,0 +1,138 @@
+"""The ``pamjoint`` command line: sub-commands, argument checks and human/JSON output."""
+from __future__ import annotations
+
+import argparse
+import json
+import math
+import sys
+from pathlib import Path
+
+from . import safety
+from .errors import ConfigError, DataError, ParameterError
+from .units import UnitError, to_si
+
+EXIT_BAD_INPUT = 2
+
+
+class _Parser(argparse.ArgumentParser):
+    """argparse with one-line errors (exit 2), as every other bad input in pamjoint."""
+
+    def error(self, message):  # noqa: D401 - argparse hook
+        self.exit(EXIT_BAD_INPUT, f"{self.prog}: error: {message}\n")
+
+
+class BadInput(ValueError):
+    """A command-line value is invalid (one-line message)."""
+
+
+def _pressure_list(text: str) -> list[float]:
+    """Parse ``"1,2,3 bar"`` or ``"100 kPa, 2 bar"`` into Pa."""
+    items = [s.strip() for s in text.split(",") if s.strip()]
+    if not items:
+        raise BadInput(f"--pressures: {text!r} is empty; write e.g. '1,2,3,4 bar'")
+    unit = ""
+    last = items[-1].split()
+    if len(last) == 2:
+        unit = last[1]
+    out = []
+    for item in items:
+        value = item if len(item.split()) == 2 else f"{item} {unit}"
+        try:
+            pa = to_si(value.strip(), "pressure")
+        except UnitError as exc:
+            raise BadInput(f"--pressures: {exc}") from None
+        if pa < 0:
+            raise BadInput(f"--pressures: {item!r} is not allowed; gauge pressures must be >= 0")
+        out.append(pa)
+    return out
+
+
+def _out_dir(args, kind: str) -> Path:
+    from .records import new_run_dir
+
+    if args.out:
+        out = Path(args.out)
+        out.mkdir(parents=True, exist_ok=True)
+        return out
+    return new_run_dir(kind)
+
+
+def cmd_muscle(args) -> int:
+    """Force table and force–contraction–pressure map of the configured muscle."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    from . import config as cfgmod
+    from .muscle_map import build_map, format_table, map_to_dict
+    from .plotting import plot_force_curves, plot_force_map
+    from .records import save_figure_atomic, write_json_atomic
+
+    cfg = cfgmod.load(args.config)
+    params = cfgmod.muscle_params(cfg)
+    settings = cfg.get("muscle_map")
+    pressures = _pressure_list(args.pressures) if args.pressures else settings["pressures"]
+    mmap = build_map(params, pressures, settings["contraction_step"], settings["usable_fraction"])
+    out = _out_dir(args, "muscle")
+
+    fig, (ax1, ax2) = plt.subplots(1, 2, figsize=(11, 4.5), layout="constrained")
+    plot_force_curves(mmap, ax=ax1)
+    plot_force_map(mmap, ax=ax2)
+    fig.suptitle(f"{cfg.get('name') or 'muscle'}: static force of one muscle")
+    png = save_figure_atomic(fig, out / "muscle_map.png")
+    plt.close(fig)
+    data = {"config": cfg.source, "config_hash": cfg.digest, **map_to_dict(mmap),
+            "cautions": [safety.over_rated(p / 1e5, params.rated_pressure / 1e5)
+                         for p in mmap.pressures[mmap.over_rated]],
+            "safety": safety.GENERAL, "plot": str(png)}
+    write_json_atomic(out / "muscle_map.json", data)
+    if args.json:
+        print(json.dumps(data, indent=2))
+        return 0
+    print(f"muscle of {cfg.source}: rest length {params.rest_length * 1e3:g} mm, rest radius "
+          f"{params.rest_radius * 1e3:g} mm, rest braid angle {math.degrees(params.rest_braid_angle):.2f} deg")
+    print(f"maximum contraction {data['max_contraction_pct']:.1f} %, usable up to "
+          f"{data['usable_contraction_pct']:.1f} %; volume {data['rest_volume_cm3']:.1f} cm^3 at rest, "
+          f"{data['max_volume_cm3']:.1f} cm^3 fully contracted")
+    print(format_table(mmap))
+    for line in data["cautions"]:
+        print(line)
+    print(f"wrote {png} and {out / 'muscle_map.json'}")
+    print(safety.GENERAL)
+    return 0
+
+
+def build_parser() -> argparse.ArgumentParser:
+    """The argument parser of all sub-commands."""
+    parser = _Parser(prog="pamjoint", description="Antagonistic McKibben muscle joints: sizing, "
+                     "simulation and learned feedforward control.")
+    sub = parser.add_subparsers(dest="command", required=True, parser_class=_Parser)
+
+    p = sub.add_parser("muscle", help="force table and force map of the configured muscle")
+    p.add_argument("config", help="YAML config (the plant.muscle section is used)")
+    p.add_argument("--pressures", help="gauge pressures to tabulate, e.g. '1,2,3,4,5,6 bar' "
+                   "(default: muscle_map.pressures, else 1 bar steps up to the rated pressure)")
+    p.add_argument("--out", help="output folder (default: a new folder under runs/)")
+    p.add_argument("--json", action="store_true", help="print the numbers as JSON")
+    p.set_defaults(func=cmd_muscle)
+    return parser
+
+
+def main(argv=None) -> int:
+    """Entry point of the ``pamjoint`` console script; returns the exit code."""
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    try:
+        return args.func(args)
+    except (ConfigError, DataError, ParameterError, UnitError, BadInput) as exc:
+        print(f"pamjoint {args.command}: error: {exc}", file=sys.stderr)
+        return EXIT_BAD_INPUT
+    except KeyboardInterrupt:
+        print(f"pamjoint {args.command}: interrupted; finished files are complete, none is half-written",
+              file=sys.stderr)
+        return 130
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

@@ -1,0 +1,81 @@
+"""Config loading: units converted to SI, one-line errors naming key path, value and what is allowed."""
+import math
+from pathlib import Path
+
+import pytest
+import yaml
+
+from muscle_sim import config
+from muscle_sim.errors import ConfigError
+from muscle_sim.units import to_si, UnitError
+
+DEMO = Path(__file__).resolve().parents[1] / "configs" / "flipper.yaml"
+
+
+def demo_raw():
+    return yaml.safe_load(DEMO.read_text())
+
+
+def test_demo_config_loads_in_si():
+    cfg = config.load(DEMO)
+    m = config.muscle_params(cfg)
+    assert m.rest_length == pytest.approx(0.25)
+    assert m.rest_radius == pytest.approx(0.008)
+    assert m.rest_braid_angle == pytest.approx(math.radians(22))
+    assert m.rated_pressure == pytest.approx(6e5)
+    assert cfg.get("muscle_map.contraction_step") == pytest.approx(0.025)
+
+
+def test_unit_conversions():
+    # Exact definitions: 1 bar = 1e5 Pa, 1 psi = 6894.757293168 Pa (NIST SP 811),
+    # 1 dm^3/(s bar) = 1e-8 m^3/(s Pa) (ISO 6358-1).
+    assert to_si("6 bar", "pressure") == 6e5
+    assert to_si("14.5038 psi", "pressure") == pytest.approx(1e5, rel=1e-5)
+    assert to_si("1.5 dm^3/(s bar)", "sonic_conductance") == pytest.approx(1.5e-8)
+    assert to_si("22 deg", "angle") == pytest.approx(math.radians(22))
+    assert to_si("2.5 %", "dimensionless") == pytest.approx(0.025)
+    with pytest.raises(UnitError):
+        to_si(250, "length")
+
+
+def _error(raw):
+    with pytest.raises(ConfigError) as info:
+        config.load(raw)
+    msg = str(info.value)
+    assert "\n" not in msg
+    return msg
+
+
+def test_unknown_key_gets_a_did_you_mean():
+    raw = demo_raw()
+    raw["plant"]["muscle"]["rest_lenght"] = raw["plant"]["muscle"].pop("rest_length")
+    msg = _error(raw)
+    assert msg.startswith("plant.muscle.rest_lenght: unknown key") and "rest_length" in msg
+
+
+@pytest.mark.parametrize("key, value, expect", [
+    ("rest_length", "250 mn", "unit 'mn'"),
+    ("rest_length", 250, "has no unit"),
+    ("rest_length", "-5 mm", "must be > 0 mm"),
+    ("rest_braid_angle", "60 deg", "must be > 0 deg and < 54.7356 deg"),
+    ("end_correction", 0.8, ">= 1"),
+    ("wall_thickness", "8 mm", "wall_thickness"),
+])
+def test_bad_values_are_one_line_with_path(key, value, expect):
+    raw = demo_raw()
+    raw["plant"]["muscle"][key] = value
+    msg = _error(raw)
+    assert msg.startswith(f"plant.muscle.{key}:")
+    assert expect in msg
+
+
+def test_missing_required_key():
+    raw = demo_raw()
+    del raw["plant"]["muscle"]["rest_radius"]
+    assert _error(raw).startswith("plant.muscle.rest_radius: missing")
+
+
+def test_bad_yaml_file(tmp_path):
+    bad = tmp_path / "bad.yaml"
+    bad.write_text("plant: [unclosed\n")
+    assert "not valid YAML" in _error(bad)
