@@ -11,14 +11,15 @@ import difflib
 import hashlib
 import json
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any, Mapping
 
 import yaml
 
 from .errors import ConfigError, ParameterError
-from .params import McKibbenParams
+from .params import JointParams, McKibbenParams, PlantParams, PneumaticParams
+from .pneumatics import tube_delay, tube_volume
 from .units import UNITS, UnitError, allowed_units, to_si
 
 _REQUIRED = object()
@@ -77,11 +78,118 @@ MUSCLE_MAP_KEYS = _section(
                         default=0.8, low=0, high=1.0, low_open=True),
 )
 
-#: Declared layout of a pamjoint config (extended by later sections as the tool grows).
+_POS = dict(low=0, low_open=True)
+_NONNEG = dict(low=0)
+
+JOINT_KEYS = _section(
+    pulley_radius=Key("length", "radius the muscle cables wind on", unit="mm", **_POS),
+    pre_contraction=Key("dimensionless", "contraction of both muscles at 0 deg", low=0, high=0.5),
+    paddle_inertia=Key("inertia", "inertia of the paddle about the pivot", **_POS),
+    paddle_mass=Key("mass", "mass of the paddle", default=0.0, **_NONNEG),
+    center_of_mass=Key("length", "distance of the paddle's centre of mass from the pivot", default=0.0,
+                       unit="mm", **_NONNEG),
+    payload_mass=Key("mass", "payload riding on the paddle (the prior model may not know it)", default=0.0,
+                     **_NONNEG),
+    payload_radius=Key("length", "distance of the payload from the pivot", default=0.0, unit="mm", **_NONNEG),
+    hanging_angle=Key("angle", "joint angle at which the paddle hangs straight down; null for a "
+                      "horizontal swing plane (no gravity)", default=None, low=-math.pi, high=math.pi, unit="deg"),
+    viscous_damping=Key("rotational_damping", "viscous friction at the pivot", default=0.0, **_NONNEG),
+    coulomb_torque=Key("torque", "dry friction level at the pivot", default=0.0, **_NONNEG),
+    coulomb_rate_scale=Key("angular_velocity", "rate that smooths the dry friction sign", default=0.05, **_POS,
+                           unit="rad/s"),
+    lower_stop=Key("angle", "where the lower end stop begins", low=-math.pi, high=0, unit="deg"),
+    upper_stop=Key("angle", "where the upper end stop begins", low=0, high=math.pi, unit="deg"),
+    stop_stiffness=Key("rotational_stiffness", "end-stop spring rate", default=2000.0, **_NONNEG),
+    stop_damping=Key("dimensionless", "Hunt-Crossley stop damping per rad of penetration [N m s/rad^2]",
+                     default=50.0, **_NONNEG),
+)
+
+PNEUMATIC_KEYS = _section(
+    supply_pressure=Key("pressure", "gauge supply pressure", unit="bar", **_POS),
+    allow_supply_above_rated=Key("bool", "accept a supply above the muscles' rated pressure (every output "
+                                 "then carries a caution)", default=False),
+    atmosphere=Key("pressure", "ABSOLUTE ambient pressure", default=101325.0, unit="kPa", **_POS),
+    temperature=Key("temperature", "air temperature", default=293.15, **_POS),
+    model=Key("str", "valve (ISO 6358 flow through proportional valves) or lag (first-order regulator)",
+              default="valve", choices=("valve", "lag")),
+    sonic_conductance=Key("sonic_conductance", "ISO 6358 sonic conductance C of each valve", default=1.5e-8,
+                          unit="dm^3/(s bar)", **_POS),
+    critical_ratio=Key("dimensionless", "ISO 6358 critical pressure ratio b", default=0.3, low=0, high=0.99),
+    subsonic_index=Key("dimensionless", "ISO 6358-1:2013 subsonic index m", default=0.5, low=0.1, high=1.0),
+    valve_time_constant=Key("time", "spool time constant of the proportional valve", default=0.002, unit="ms",
+                            **_POS),
+    valve_gain=Key("dimensionless", "inner pressure loop: spool opening per bar of pressure error",
+                   default=4.0, **_POS),
+    valve_dead_time=Key("time", "dead time of the valve electronics", default=0.0, unit="ms", **_NONNEG),
+    tube_length=Key("length", "tube length from valve to muscle", default=0.0, unit="m", **_NONNEG),
+    tube_bore=Key("length", "tube inner diameter", default=0.004, unit="mm", **_POS),
+    fitting_volume=Key("volume", "dead volume of fittings and muscle end caps", default=0.0, unit="cm^3",
+                       **_NONNEG),
+    lag_time_constant=Key("time", "time constant of the lag model", default=0.02, unit="ms", **_POS),
+    max_pressure_rate=Key("pressure_rate", "rate limit of the lag model (null: none)", default=None,
+                          unit="bar/s", **_POS),
+)
+
+SENSOR_KEYS = _section(
+    angle_counts=Key("int", "encoder counts per revolution (0: no quantisation)", default=0, low=0),
+    angle_noise=Key("angle", "standard deviation of the angle noise", default=0.0, unit="deg", **_NONNEG),
+    rate_noise=Key("angular_velocity", "standard deviation of the rate noise", default=0.0, unit="deg/s",
+                   **_NONNEG),
+    pressure_noise=Key("pressure", "standard deviation of the pressure sensor noise", default=0.0,
+                       unit="kPa", **_NONNEG),
+    pressure_lag=Key("time", "time constant of the pressure sensors", default=0.0, unit="ms", **_NONNEG),
+)
+
+DRIFT_KEYS = _section(
+    friction_growth=Key("dimensionless", "relative growth of braid and pivot friction per trial",
+                        default=0.0, low=-0.5, high=0.5),
+    supply_sag=Key("pressure", "drop of the supply pressure per trial", default=0.0, unit="bar", **_NONNEG),
+    supply_floor=Key("pressure", "the supply never sags below this", default=0.0, unit="bar", **_NONNEG),
+    spread=Key("dimensionless", "random relative spread of friction and supply per trial (seeded)",
+               default=0.0, low=0, high=0.2),
+)
+
+PRIOR_KEYS = _section(
+    muscle_model=Key("str", "ideal (no wall, no end effect, no friction) or plant (the plant's muscle)",
+                     default="ideal", choices=("ideal", "plant")),
+    end_correction=Key("dimensionless", "end correction the prior assumes (null: that of muscle_model)",
+                       default=None, low=1.0, high=10.0),
+    payload_known=Key("bool", "whether the prior knows the payload", default=False),
+    inertia_error=Key("dimensionless", "relative error of the prior's paddle inertia", default=0.0,
+                      low=-0.9, high=10.0),
+    pivot_friction=Key("bool", "whether the prior models the pivot friction", default=False),
+    pressure_model=Key("str", "lag (first-order regulator) or valve (the plant's valves)", default="lag",
+                       choices=("lag", "valve")),
+    pressure_time_constant=Key("time", "time constant of the prior's pressure lag", default=0.02, unit="ms",
+                               **_POS),
+    pressure_delay=Key("time", "command delay the prior assumes (null: the plant's)", default=None, unit="ms",
+                       **_NONNEG),
+)
+
+TASK_KEYS = _section(
+    home_angle=Key("angle", "rest angle before and after the strike", unit="deg", low=-math.pi, high=math.pi),
+    strike_angle=Key("angle", "angle at the strike instant", unit="deg", low=-math.pi, high=math.pi),
+    strike_time=Key("time", "strike instant from the start of the trial", unit="ms", **_POS),
+    strike_speed=Key("angular_velocity", "angular speed at the strike instant", unit="rad/s", **_POS),
+    follow_through=Key("angle", "travel past the strike angle before the swing turns back", unit="deg",
+                       **_POS),
+    return_time=Key("time", "when the reference is back at the home angle", unit="ms", **_POS),
+    settle_time=Key("time", "by when the paddle must have settled at home", unit="ms", **_POS),
+    settle_tolerance=Key("angle", "band around home that counts as settled", default=math.radians(1.0),
+                         unit="deg", **_POS),
+    trial_length=Key("time", "length of one trial (episode)", unit="ms", **_POS),
+    control_rate=Key("frequency", "control (and sampling) rate", default=500.0, unit="Hz", **_POS),
+    n_substeps=Key("int", "RK4 physics sub-steps per control step", default=2, low=1, high=1000),
+)
+
+#: Declared layout of a pamjoint config (every key, its quantity, default, range and meaning).
 SCHEMA: dict = {
     "name": Key("str", "a short name for the setup", default=""),
     "description": Key("str", "free text about the setup", default=""),
-    "plant": {"muscle": MUSCLE_KEYS},
+    "plant": {"muscle": MUSCLE_KEYS, "joint": JOINT_KEYS, "pneumatics": PNEUMATIC_KEYS,
+              "sensors": SENSOR_KEYS, "drift": DRIFT_KEYS},
+    "prior": PRIOR_KEYS,
+    "task": TASK_KEYS,
     "muscle_map": MUSCLE_MAP_KEYS,
 }
 
@@ -211,14 +319,122 @@ def load(source) -> Config:
 
 def _check_cross(cfg: Config) -> None:
     """Checks that involve more than one key (each still reported on one line)."""
-    muscle_params(cfg)  # builds and validates the muscle
+    muscle = muscle_params(cfg)
+    pn = cfg.get("plant.pneumatics")
+    if pn["supply_pressure"] > muscle.rated_pressure and not pn["allow_supply_above_rated"]:
+        raise ConfigError(
+            f"plant.pneumatics.supply_pressure: {pn['supply_pressure'] / 1e5:g} bar is not allowed; must be "
+            f"<= plant.muscle.rated_pressure {muscle.rated_pressure / 1e5:g} bar (set "
+            f"plant.pneumatics.allow_supply_above_rated: true to analyse it anyway)")
+    joint = cfg.get("plant.joint")
+    task = cfg.get("task")
+    for name in ("home_angle", "strike_angle"):
+        if not joint["lower_stop"] < task[name] < joint["upper_stop"]:
+            raise ConfigError(f"task.{name}: {math.degrees(task[name]):g} deg is not allowed; must lie between "
+                              f"the end stops {math.degrees(joint['lower_stop']):g} and "
+                              f"{math.degrees(joint['upper_stop']):g} deg")
+    peak = task["strike_angle"] + task["follow_through"]
+    if peak >= joint["upper_stop"]:
+        raise ConfigError(f"task.follow_through: {math.degrees(task['follow_through']):g} deg is not allowed; "
+                          f"strike angle plus follow-through must stay below the upper stop "
+                          f"{math.degrees(joint['upper_stop']):g} deg")
+    if task["strike_angle"] <= task["home_angle"]:
+        raise ConfigError(f"task.strike_angle: {math.degrees(task['strike_angle']):g} deg is not allowed; "
+                          f"must be above task.home_angle {math.degrees(task['home_angle']):g} deg")
+    order = [("strike_time", task["strike_time"]), ("return_time", task["return_time"]),
+             ("settle_time", task["settle_time"]), ("trial_length", task["trial_length"])]
+    for (a, va), (b, vb) in zip(order, order[1:]):
+        if vb < va:
+            raise ConfigError(f"task.{b}: {vb * 1e3:g} ms is not allowed; must be >= task.{a} {va * 1e3:g} ms")
+    steps = task["trial_length"] * task["control_rate"]
+    if abs(steps - round(steps)) > 1e-6 or abs(task["strike_time"] * task["control_rate"]
+                                                - round(task["strike_time"] * task["control_rate"])) > 1e-6:
+        raise ConfigError(f"task.control_rate: {task['control_rate']:g} Hz is not allowed; trial_length and "
+                          f"strike_time must be whole numbers of control steps")
+    plant_params(cfg)
+    prior_params(cfg)
 
 
 def muscle_params(cfg: Config, section: str = "plant.muscle") -> McKibbenParams:
     """Build :class:`McKibbenParams` from a config section; errors carry the key path."""
-    values = cfg.get(section)
+    return _build(McKibbenParams, cfg.get(section), section)
+
+
+def _build(cls, values: dict, section: str, rename: dict | None = None):
     try:
-        return McKibbenParams(**values)
+        return cls(**values)
     except ParameterError as exc:
-        field = str(exc).split(":", 1)[0].split(".", 1)[-1]
-        raise ConfigError(f"{section}.{field}:{str(exc).split(':', 1)[1]}") from None
+        text = str(exc)
+        field = text.split(":", 1)[0].split(".", 1)[-1]
+        field = (rename or {}).get(field, field)
+        raise ConfigError(f"{section}.{field}:{text.split(':', 1)[1]}") from None
+
+
+_GRAVITY = 9.80665  # standard gravity [m/s^2] (CGPM 1901)
+
+
+def joint_params(cfg: Config, payload: bool = True, inertia_error: float = 0.0,
+                 pivot_friction: bool = True) -> JointParams:
+    """Build :class:`JointParams` from ``plant.joint`` (optionally as a prior model sees it)."""
+    j = cfg.get("plant.joint")
+    m_pay = j["payload_mass"] if payload else 0.0
+    moment = (j["paddle_mass"] * j["center_of_mass"] + m_pay * j["payload_radius"]) * _GRAVITY
+    hanging = j["hanging_angle"]
+    values = dict(
+        pulley_radius=j["pulley_radius"], pre_contraction=j["pre_contraction"],
+        inertia=j["paddle_inertia"] * (1.0 + inertia_error), payload_inertia=m_pay * j["payload_radius"] ** 2,
+        gravity_moment=0.0 if hanging is None else moment,
+        gravity_offset=0.0 if hanging is None else -hanging,
+        viscous_damping=j["viscous_damping"] if pivot_friction else 0.0,
+        coulomb_torque=j["coulomb_torque"] if pivot_friction else 0.0,
+        coulomb_rate_scale=j["coulomb_rate_scale"], lower_stop=j["lower_stop"], upper_stop=j["upper_stop"],
+        stop_stiffness=j["stop_stiffness"], stop_damping=j["stop_damping"])
+    return _build(JointParams, values, "plant.joint", {"inertia": "paddle_inertia"})
+
+
+def pneumatic_params(cfg: Config, model: str | None = None, lag_time_constant: float | None = None,
+                     delay: float | None = None) -> PneumaticParams:
+    """Build :class:`PneumaticParams` from ``plant.pneumatics`` (tube -> dead volume and delay)."""
+    pn = cfg.get("plant.pneumatics")
+    plant_delay = tube_delay(pn["tube_length"], pn["temperature"]) + pn["valve_dead_time"]
+    values = dict(
+        supply_pressure=pn["supply_pressure"], model=model or pn["model"], atmosphere=pn["atmosphere"],
+        temperature=pn["temperature"], sonic_conductance=pn["sonic_conductance"],
+        critical_ratio=pn["critical_ratio"], subsonic_index=pn["subsonic_index"],
+        valve_time_constant=pn["valve_time_constant"], valve_gain=pn["valve_gain"],
+        dead_volume=tube_volume(pn["tube_length"], pn["tube_bore"]) + pn["fitting_volume"],
+        delay=plant_delay if delay is None else delay,
+        lag_time_constant=pn["lag_time_constant"] if lag_time_constant is None else lag_time_constant,
+        max_pressure_rate=math.inf if pn["max_pressure_rate"] is None else pn["max_pressure_rate"])
+    return _build(PneumaticParams, values, "plant.pneumatics")
+
+
+def plant_params(cfg: Config) -> PlantParams:
+    """The simulated truth: every effect the config describes."""
+    return _build_plant(muscle_params(cfg), joint_params(cfg), pneumatic_params(cfg))
+
+
+def prior_params(cfg: Config) -> PlantParams:
+    """The model the controllers believe, derived from ``plant`` by the ``prior`` section."""
+    pr = cfg.get("prior")
+    muscle = muscle_params(cfg)
+    if pr["muscle_model"] == "ideal":
+        muscle = replace(muscle, wall_thickness=0.0, end_correction=1.0, threshold_pressure=0.0,
+                         braid_friction=0.0)
+    if pr["end_correction"] is not None:
+        muscle = _build(McKibbenParams, {**muscle.__dict__, "end_correction": pr["end_correction"]},
+                        "prior")
+    joint = joint_params(cfg, payload=pr["payload_known"], inertia_error=pr["inertia_error"],
+                         pivot_friction=pr["pivot_friction"])
+    pneu = pneumatic_params(cfg, model=pr["pressure_model"], lag_time_constant=pr["pressure_time_constant"],
+                            delay=pr["pressure_delay"])
+    return _build_plant(muscle, joint, pneu, "prior")
+
+
+def _build_plant(muscle, joint, pneumatics, section: str = "plant.joint") -> PlantParams:
+    try:
+        return PlantParams(muscle, joint, pneumatics)
+    except ParameterError as exc:
+        text = str(exc)
+        field = text.split(":", 1)[0].split(".", 1)[-1]
+        raise ConfigError(f"{section}.{field}:{text.split(':', 1)[1]}") from None

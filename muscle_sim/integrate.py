@@ -1,0 +1,172 @@
+"""Fixed-step RK4 with an integer number of sub-steps per control step, the command transport
+delay, divergence checks, and a scipy ``solve_ivp`` reference path for tests."""
+from __future__ import annotations
+
+import math
+from collections import deque
+
+import numpy as np
+
+from .errors import ParameterError, SimulationDiverged
+from .plant import N_STATE, clamp_pressures, rhs, rhs_f
+from .params import PlantParams
+
+#: Angle and rate magnitudes past which a state counts as diverged [rad], [rad/s].
+ANGLE_LIMIT = 20.0
+RATE_LIMIT = 2000.0
+
+
+def check_substeps(control_dt: float, n_substeps) -> int:
+    """Validate the sub-step count (an integer >= 1) and return it."""
+    if isinstance(n_substeps, bool) or not isinstance(n_substeps, (int, np.integer)) or n_substeps < 1:
+        raise ParameterError(f"n_substeps: {n_substeps!r} is not allowed; must be a whole number >= 1")
+    if not (math.isfinite(control_dt) and control_dt > 0):
+        raise ParameterError(f"control_dt: {control_dt!r} s is not allowed; must be > 0")
+    return int(n_substeps)
+
+
+def delay_substeps(params: PlantParams, control_dt: float, n_substeps: int) -> int:
+    """Command delay rounded to whole physics sub-steps."""
+    return int(round(params.pneumatics.delay / (control_dt / n_substeps)))
+
+
+def rk4_step(t, x, u, h, params):
+    """One classical RK4 step of :func:`muscle_sim.plant.rhs` (batched arrays)."""
+    k1 = rhs(t, x, u, params)
+    k2 = rhs(t + 0.5 * h, x + (0.5 * h) * k1, u, params)
+    k3 = rhs(t + 0.5 * h, x + (0.5 * h) * k2, u, params)
+    k4 = rhs(t + h, x + h * k3, u, params)
+    return x + (h / 6.0) * (k1 + 2.0 * (k2 + k3) + k4)
+
+
+def rk4_step_f(t, x, u, h, params):
+    """One RK4 step of :func:`muscle_sim.plant.rhs_f` on Python floats."""
+    k1 = rhs_f(t, x, u, params)
+    k2 = rhs_f(t + 0.5 * h, [a + 0.5 * h * b for a, b in zip(x, k1)], u, params)
+    k3 = rhs_f(t + 0.5 * h, [a + 0.5 * h * b for a, b in zip(x, k2)], u, params)
+    k4 = rhs_f(t + h, [a + h * b for a, b in zip(x, k3)], u, params)
+    h6 = h / 6.0
+    return [a + h6 * (b1 + 2.0 * (b2 + b3) + b4) for a, b1, b2, b3, b4 in zip(x, k1, k2, k3, k4)]
+
+
+def _diverged(x) -> bool:
+    q, qd = x[..., 0], x[..., 1]
+    return not (np.all(np.isfinite(x)) and np.all(np.abs(q) < ANGLE_LIMIT) and np.all(np.abs(qd) < RATE_LIMIT))
+
+
+class Stepper:
+    """Advances the plant one control step at a time, applying the command delay.
+
+    ``batch=None`` runs one state on Python floats (the fast scalar path); an integer runs a
+    batch of states with numpy. Commands are piecewise constant over each control step; the
+    delay shifts them by a whole number of physics sub-steps.
+    """
+
+    def __init__(self, params: PlantParams, control_dt: float, n_substeps: int, batch: int | None = None):
+        self.params = params
+        self.control_dt = float(control_dt)
+        self.n_substeps = check_substeps(control_dt, n_substeps)
+        self.h = self.control_dt / self.n_substeps
+        self.batch = batch
+        self.n_delay = delay_substeps(params, control_dt, self.n_substeps)
+        self._history: deque = deque()
+        self.reset(np.zeros(N_STATE) if batch is None else np.zeros((batch, N_STATE)))
+
+    def reset(self, x0, u_before=None, t0: float = 0.0) -> None:
+        """Start from state ``x0``; ``u_before`` is the command assumed before ``t0``."""
+        if self.batch is None:
+            self.x = [float(v) for v in np.asarray(x0, dtype=float)]
+            fill = (0.0, 0.0) if u_before is None else tuple(float(v) for v in u_before)
+        else:
+            self.x = np.array(x0, dtype=float).reshape(self.batch, N_STATE)
+            fill = np.zeros((self.batch, 2)) if u_before is None else np.broadcast_to(
+                np.asarray(u_before, dtype=float), (self.batch, 2)).copy()
+        depth = -(-self.n_delay // self.n_substeps) + 1   # control steps the delay can reach back
+        self._history = deque([fill] * depth, maxlen=depth)
+        self.t = float(t0)
+        self.k = 0
+
+    def _command_for(self, j: int):
+        """Command acting at sub-step ``j`` of the current control step (after the delay)."""
+        lag = self.n_delay - j                       # sub-steps back from the start of this step
+        back = 0 if lag <= 0 else -(-lag // self.n_substeps)
+        return self._history[-1 - back]
+
+    def step(self, u):
+        """Advance one control step with command ``u`` [Pa]; returns the new state."""
+        if self.batch is None:
+            u = (float(u[0]), float(u[1]))
+        else:
+            u = np.broadcast_to(np.asarray(u, dtype=float), (self.batch, 2)).copy()
+        self._history.append(u)
+        h, p = self.h, self.params
+        x, t = self.x, self.t
+        supply = p.pneumatics.supply_pressure
+        for j in range(self.n_substeps):
+            uj = self._command_for(j)
+            if self.batch is None:
+                x = rk4_step_f(t, x, uj, h, p)
+                x[2] = min(max(x[2], 0.0), supply)
+                x[3] = min(max(x[3], 0.0), supply)
+            else:
+                x = clamp_pressures(p, rk4_step(t, x, uj, h, p))
+            t += h
+        self.k += 1
+        self.t = self.t0_plus(self.k)
+        if self.batch is None:
+            q, qd = x[0], x[1]
+            if not (all(map(math.isfinite, x)) and abs(q) < ANGLE_LIMIT and abs(qd) < RATE_LIMIT):
+                raise SimulationDiverged(f"state left the physical range at t = {self.t:.4f} s: {x}")
+        elif _diverged(x):
+            raise SimulationDiverged(f"state left the physical range at t = {self.t:.4f} s")
+        self.x = x
+        return x
+
+    def t0_plus(self, k: int) -> float:
+        """Time after ``k`` control steps (exact multiple, no accumulated rounding)."""
+        return k * self.control_dt
+
+
+def simulate(params: PlantParams, x0, commands, control_dt: float, n_substeps: int, u_before=None):
+    """Fixed-step trajectory for a command sequence ``commands`` (N, 2) [Pa]; returns (N+1, 6)."""
+    stepper = Stepper(params, control_dt, n_substeps, batch=None)
+    stepper.reset(x0, u_before)
+    out = [list(stepper.x)]
+    for u in np.asarray(commands, dtype=float):
+        out.append(list(stepper.step(u)))
+    return np.array(out)
+
+
+def simulate_reference(params: PlantParams, x0, commands, control_dt: float, n_substeps: int,
+                       u_before=None, rtol: float = 1e-10, atol=None):
+    """The same trajectory by ``scipy.integrate.solve_ivp`` (DOP853) on each interval of
+    constant delayed command; the reference path for tests of the fixed-step integrator."""
+    from scipy.integrate import solve_ivp
+
+    n_sub = check_substeps(control_dt, n_substeps)
+    h = control_dt / n_sub
+    n_delay = delay_substeps(params, control_dt, n_sub)
+    commands = np.asarray(commands, dtype=float)
+    u0 = np.zeros(2) if u_before is None else np.asarray(u_before, dtype=float)
+    if atol is None:
+        atol = np.array([1e-12, 1e-10, 1e-6, 1e-6, 1e-12, 1e-12])
+    x = np.asarray(x0, dtype=float).copy()
+    out = [x.copy()]
+    total = len(commands) * n_sub
+    i = 0
+    while i < total:
+        src = (i - n_delay) // n_sub
+        u = commands[src] if src >= 0 else u0
+        # extend the segment while the delayed command stays the same source sample
+        j = i + 1
+        while j < total and (j - n_delay) // n_sub == src and j % n_sub != 0:
+            j += 1
+        sol = solve_ivp(lambda t, y: rhs(t, y, u, params), (i * h, j * h), x, method="DOP853",
+                        rtol=rtol, atol=atol)
+        if not sol.success:
+            raise SimulationDiverged(f"reference solver failed at t = {i * h:.4f} s: {sol.message}")
+        x = sol.y[:, -1]
+        i = j
+        if i % n_sub == 0:
+            out.append(x.copy())
+    return np.array(out)
