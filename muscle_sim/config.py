@@ -180,6 +180,10 @@ TASK_KEYS = _section(
     trial_length=Key("time", "length of one trial (episode)", unit="ms", **_POS),
     control_rate=Key("frequency", "control (and sampling) rate", default=500.0, unit="Hz", **_POS),
     n_substeps=Key("int", "RK4 physics sub-steps per control step", default=2, low=1, high=1000),
+    home_pressure=Key("pressure", "co-contraction: the weaker muscle's pressure holding home", default=2e5,
+                      unit="bar", low=0),
+    fault_depth=Key("angle", "penetration into an end stop that ends a trial as a hard fault",
+                    default=math.radians(3.0), unit="deg", **_POS),
 )
 
 #: Declared layout of a pamjoint config (every key, its quantity, default, range and meaning).
@@ -353,6 +357,9 @@ def _check_cross(cfg: Config) -> None:
                           f"strike_time must be whole numbers of control steps")
     plant_params(cfg)
     prior_params(cfg)
+    sensor_params(cfg)
+    drift_params(cfg)
+    strike_task(cfg)
 
 
 def muscle_params(cfg: Config, section: str = "plant.muscle") -> McKibbenParams:
@@ -438,3 +445,24 @@ def _build_plant(muscle, joint, pneumatics, section: str = "plant.joint") -> Pla
         text = str(exc)
         field = text.split(":", 1)[0].split(".", 1)[-1]
         raise ConfigError(f"{section}.{field}:{text.split(':', 1)[1]}") from None
+
+
+def sensor_params(cfg: Config):
+    """Build :class:`~muscle_sim.sensors.SensorParams` from ``plant.sensors``."""
+    from .sensors import SensorParams
+
+    return _build(SensorParams, cfg.get("plant.sensors"), "plant.sensors")
+
+
+def drift_params(cfg: Config):
+    """Build :class:`~muscle_sim.drift.DriftParams` from ``plant.drift``."""
+    from .drift import DriftParams
+
+    return _build(DriftParams, cfg.get("plant.drift"), "plant.drift")
+
+
+def strike_task(cfg: Config):
+    """Build the :class:`~muscle_sim.tasks.StrikeTask` of the ``task`` section."""
+    from .tasks import task_from_config
+
+    return task_from_config(cfg.get("task"))

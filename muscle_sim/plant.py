@@ -140,3 +140,24 @@ def equilibrium_torque(params: PlantParams, angle, pressures):
     return params.joint.pulley_radius * (fa - fb)
 
 
+
+
+def holding_pressures(params: PlantParams, angle: float, base_pressure: float):
+    """Gauge pressures ``(p_a, p_b)`` that hold the joint at rest at ``angle`` [Pa]: the weaker
+    side gets ``base_pressure``, the other what the static torque balance
+    ``r_p (F_a - F_b) = m g l sin(q + q_g)`` needs (friction aside)."""
+    m, j = params.muscle, params.joint
+    eps_a, eps_b = _joint.contractions(j, m.rest_length, angle)
+    area_a = float(_muscle.effective_area(m, eps_a))
+    area_b = float(_muscle.effective_area(m, eps_b))
+    if area_a <= 0.0 or area_b <= 0.0:
+        raise ValueError(f"angle: {angle:g} rad leaves a muscle slack or fully contracted; cannot hold it")
+    load = j.gravity_moment * math.sin(angle + j.gravity_offset) / j.pulley_radius   # F_a - F_b needed
+    thr = m.threshold_pressure
+    base_net = max(base_pressure - thr, 0.0)
+    f_b = base_net * area_b
+    p_a = thr + (f_b + load) / area_a
+    if p_a < base_pressure:   # muscle A is the weaker side: give B the base instead
+        f_a = base_net * area_a
+        return base_pressure, thr + max(f_a - load, 0.0) / area_b
+    return p_a, base_pressure

@@ -60,3 +60,80 @@ def new_run_dir(kind: str, root="runs") -> Path:
         except FileExistsError:
             continue
     raise RuntimeError(f"could not create a new run folder under {root}")
+
+
+# --- trial records ----------------------------------------------------------------------------
+
+import math as _math  # noqa: E402
+from dataclasses import dataclass, field  # noqa: E402
+
+import numpy as _np  # noqa: E402
+
+from .errors import DataError  # noqa: E402
+
+#: Rollout CSV columns: (header with unit, SI -> column factor). Row k's command acts from t_k to
+#: t_{k+1}; the last row repeats the previous command.
+ROLLOUT_COLUMNS = (
+    ("time [s]", 1.0), ("angle [deg]", 180.0 / _math.pi), ("rate [deg/s]", 180.0 / _math.pi),
+    ("pressure_a [kPa]", 1e-3), ("pressure_b [kPa]", 1e-3), ("command_a [kPa]", 1e-3),
+    ("command_b [kPa]", 1e-3), ("reference [deg]", 180.0 / _math.pi),
+)
+
+
+@dataclass
+class Rollout:
+    """One trial as a rig or the simulator records it (SI units).
+
+    ``t`` (N+1,) sample times; ``measured`` (N+1, 4) readings [angle, rate, p_a, p_b];
+    ``command`` (N+1, 2) pressure commands (row k acts from t_k to t_k+1); ``reference`` (N+1,)
+    planned angle; ``true_state`` (N+1, 6) the simulator's state, None for a rig log.
+    """
+
+    t: _np.ndarray
+    measured: _np.ndarray
+    command: _np.ndarray
+    reference: _np.ndarray
+    true_state: _np.ndarray | None = None
+    metadata: dict = field(default_factory=dict)
+
+    def columns(self) -> _np.ndarray:
+        """The CSV table in column units (deg, kPa, s)."""
+        cols = [self.t, self.measured[:, 0], self.measured[:, 1], self.measured[:, 2], self.measured[:, 3],
+                self.command[:, 0], self.command[:, 1], self.reference]
+        return _np.column_stack([c * f for c, (_, f) in zip(cols, ROLLOUT_COLUMNS)])
+
+    def to_csv_text(self) -> str:
+        """CSV text: a '# ' JSON metadata line, the unit-named header, one row per sample."""
+        lines = ["# " + json.dumps(self.metadata, sort_keys=True),
+                 ",".join(name for name, _ in ROLLOUT_COLUMNS)]
+        lines += [",".join(f"{v:.9g}" for v in row) for row in self.columns()]
+        return "\n".join(lines) + "\n"
+
+    def write_csv(self, path) -> Path:
+        """Write atomically as CSV (see :meth:`to_csv_text`)."""
+        return write_text_atomic(path, self.to_csv_text())
+
+    @classmethod
+    def read_csv(cls, path) -> "Rollout":
+        """Read a rollout CSV written by :meth:`write_csv` (errors name the row and column)."""
+        text = Path(path).read_text(encoding="utf-8").splitlines()
+        meta = {}
+        if text and text[0].startswith("#"):
+            meta = json.loads(text[0][1:].strip() or "{}")
+            text = text[1:]
+        header = [h.strip() for h in text[0].split(",")]
+        expected = [name for name, _ in ROLLOUT_COLUMNS]
+        if header != expected:
+            raise DataError(f"{path}: header {header} is not allowed; must be {expected}")
+        rows = []
+        for i, line in enumerate(text[1:], start=2):
+            cells = line.split(",")
+            if len(cells) != len(expected):
+                raise DataError(f"{path}: row {i} has {len(cells)} cells; must have {len(expected)}")
+            try:
+                rows.append([float(c) for c in cells])
+            except ValueError:
+                raise DataError(f"{path}: row {i} holds a value that is not a number") from None
+        data = _np.array(rows)
+        si = data / _np.array([f for _, f in ROLLOUT_COLUMNS])
+        return cls(t=si[:, 0], measured=si[:, 1:5], command=si[:, 5:7], reference=si[:, 7], metadata=meta)
