@@ -82,9 +82,17 @@ class Stepper:
             fill = np.zeros((self.batch, 2)) if u_before is None else np.broadcast_to(
                 np.asarray(u_before, dtype=float), (self.batch, 2)).copy()
         depth = -(-self.n_delay // self.n_substeps) + 1   # control steps the delay can reach back
-        self._history = deque([fill] * depth, maxlen=depth)
+        self._history = deque([fill if self.batch is None else fill.copy() for _ in range(depth)], maxlen=depth)
         self.t = float(t0)
         self.k = 0
+
+    def reset_some(self, mask, x0, u_before) -> None:
+        """Restart the batch members where ``mask`` is true (vector autoreset): their state
+        becomes ``x0`` and their command history ``u_before``; the others go on untouched."""
+        mask = np.asarray(mask, dtype=bool)
+        self.x[mask] = x0
+        for past in self._history:
+            past[mask] = u_before
 
     def _command_for(self, j: int):
         """Command acting at sub-step ``j`` of the current control step (after the delay)."""
