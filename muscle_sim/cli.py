@@ -103,6 +103,102 @@ def cmd_muscle(args) -> int:
     return 0
 
 
+def _pressure_pair(flag: str, text: str) -> tuple[float, float]:
+    values = _pressure_list(text)
+    if len(values) != 2:
+        raise BadInput(f"{flag}: {text!r} is not allowed; must be two pressures 'A,B unit', e.g. '3,1.5 bar'")
+    return values[0], values[1]
+
+
+def _make_controller(args):
+    from controllers.base import PressureProfile
+    from controllers.simple import HoldPressures, ReplayProfile, StepPressures
+
+    if args.controller == "hold":
+        return HoldPressures(_pressure_pair("--pressures", args.pressures) if args.pressures else None)
+    if args.controller == "step":
+        if not args.pressures:
+            raise BadInput("--pressures: missing; --controller step needs the pressures after the step, e.g. "
+                           "--pressures '4,1 bar'")
+        try:
+            at = to_si(args.step_at, "time")
+        except UnitError as exc:
+            raise BadInput(f"--step-at: {exc}") from None
+        return StepPressures(_pressure_pair("--pressures", args.pressures), at)
+    if not args.profile:
+        raise BadInput("--profile: missing; --controller replay needs a profile CSV "
+                       "(columns: time [s], command_a [kPa], command_b [kPa])")
+    return ReplayProfile(PressureProfile.read_csv(args.profile), source=args.profile)
+
+
+def _print_cautions(setup) -> None:
+    if setup.over_rated:
+        print(safety.over_rated(setup.plant.pneumatics.supply_pressure / 1e5, setup.rated_pressure / 1e5))
+
+
+def cmd_check(args) -> int:
+    """Validate a config and print the resolved SI values."""
+    from . import config as cfgmod
+    from .simulation import Setup
+
+    cfg = cfgmod.load(args.config)
+    setup = Setup.from_config(cfg)
+    resolved = {"config": cfg.source, "config_hash": cfg.digest, "values": cfg.values,
+                "derived": {"plant_dead_volume_m3": setup.plant.pneumatics.dead_volume,
+                            "plant_delay_s": setup.plant.pneumatics.delay,
+                            "swing_start_s": setup.task.swing_start, "turn_time_s": setup.task.turn_time,
+                            "control_steps": setup.task.n_steps}}
+    if args.json:
+        from .records import json_safe
+
+        print(json.dumps(json_safe(resolved), indent=2))
+        return 0
+    print(f"{cfg.source}: valid (hash {cfg.digest}); values in SI units (m, rad, s, Pa gauge, kg):")
+
+    def show(node, prefix=""):
+        for key, value in node.items():
+            if isinstance(value, dict):
+                show(value, f"{prefix}{key}.")
+            else:
+                print(f"  {prefix}{key} = {value!r}")
+
+    show(cfg.values)
+    for key, value in resolved["derived"].items():
+        print(f"  derived {key} = {value:.6g}")
+    _print_cautions(setup)
+    return 0
+
+
+def cmd_run(args) -> int:
+    """Run episodes of the configured strike with an open-loop controller."""
+    from .runs import run_episodes
+    from .simulation import Setup
+
+    if args.episodes < 1:
+        raise BadInput(f"--episodes: {args.episodes} is not allowed; must be >= 1")
+    setup = Setup.from_config(args.config)
+    controller = _make_controller(args)
+    controller.reset(setup)      # validates a replayed profile before anything is written
+    out = _out_dir(args, "run")
+    summary = run_episodes(setup, controller, args.episodes, args.seed, out,
+                           progress=None if args.json else sys.stderr)
+    if args.json:
+        from .records import json_safe
+
+        print(json.dumps(json_safe(summary), indent=2))
+        return 0
+    print(f"{args.episodes} episode(s) of {setup.config.source} with controller '{controller.name}', seed {args.seed}")
+    print(f"{'episode':>7} {'rms [deg]':>10} {'strike angle err [deg]':>23} {'speed err [%]':>14} {'peak [kPa]':>11}")
+    for row in summary["episodes"]:
+        print(f"{row['episode']:>7} {row['rms_error_deg']:>10.3f} {row['strike_angle_error_deg']:>23.3f} "
+              f"{row['strike_speed_error_pct']:>14.2f} {row['peak_pressure_kpa']:>11.1f}"
+              + (f"  FAULT: {row['fault']}" if row["fault"] else ""))
+    _print_cautions(setup)
+    print(f"wrote {out}/summary.json, rollouts/ and plots")
+    print(safety.GENERAL)
+    return 0
+
+
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser of all sub-commands."""
     parser = _Parser(prog="pamjoint", description="Antagonistic McKibben muscle joints: sizing, "
@@ -116,6 +212,25 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", help="output folder (default: a new folder under runs/)")
     p.add_argument("--json", action="store_true", help="print the numbers as JSON")
     p.set_defaults(func=cmd_muscle)
+
+    p = sub.add_parser("check", help="validate a config and print the resolved SI values")
+    p.add_argument("config", help="YAML config")
+    p.add_argument("--json", action="store_true", help="print the resolved values as JSON")
+    p.set_defaults(func=cmd_check)
+
+    p = sub.add_parser("run", help="simulate strike episodes with an open-loop controller")
+    p.add_argument("config", help="YAML config")
+    p.add_argument("--episodes", type=int, default=1, help="number of episodes (trials), default 1")
+    p.add_argument("--controller", choices=("hold", "step", "replay"), default="hold",
+                   help="hold: constant pressures (default: those holding home); step: home pressures, then "
+                   "--pressures from --step-at; replay: a pressure profile CSV (--profile)")
+    p.add_argument("--pressures", help="two gauge pressures 'A,B unit', e.g. '4,1 bar'")
+    p.add_argument("--step-at", default="100 ms", help="when the step controller switches (default 100 ms)")
+    p.add_argument("--profile", help="profile CSV for --controller replay")
+    p.add_argument("--seed", type=int, default=0, help="random seed (sensor noise, drift), default 0")
+    p.add_argument("--out", help="output folder (default: a new folder under runs/)")
+    p.add_argument("--json", action="store_true", help="print the summary as JSON")
+    p.set_defaults(func=cmd_run)
     return parser
 
 

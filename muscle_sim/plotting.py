@@ -52,3 +52,42 @@ def plot_force_map(mmap, ax=None):
     ax.legend(loc="upper right", fontsize="small")
     ax.figure.colorbar(filled, ax=ax, label="static force [N]")
     return [filled, lines, rated, usable]
+
+
+def plot_angle(rollouts, ax=None, labels=None):
+    """Measured joint angle of one or more rollouts against the planned reference [deg]."""
+    ax = _axes(ax)
+    rollouts = rollouts if isinstance(rollouts, (list, tuple)) else [rollouts]
+    artists = [ax.plot(rollouts[0].t, np.degrees(rollouts[0].reference), color="k", lw=2.5, alpha=0.35,
+                       label="reference")[0]]
+    for i, r in enumerate(rollouts):
+        label = labels[i] if labels else f"trial {r.metadata.get('trial', i)}"
+        artists.append(ax.plot(r.t, np.degrees(r.measured[:, 0]), lw=1.2, label=label)[0])
+    ax.set_xlabel("time [s]")
+    ax.set_ylabel("joint angle [deg]")
+    ax.legend(fontsize="small")
+    return artists
+
+
+def plot_pressures(rollout, ax=None, rated_pressure=None):
+    """Measured muscle pressures [bar gauge], with the rated pressure as a line."""
+    ax = _axes(ax)
+    artists = [ax.plot(rollout.t, rollout.measured[:, 2] / 1e5, label="muscle A")[0],
+               ax.plot(rollout.t, rollout.measured[:, 3] / 1e5, label="muscle B")[0]]
+    if rated_pressure is not None:
+        artists.append(ax.axhline(rated_pressure / 1e5, color="tab:red", lw=1, ls="--", label="rated"))
+    ax.set_xlabel("time [s]")
+    ax.set_ylabel("pressure [bar gauge]")
+    ax.legend(fontsize="small")
+    return artists
+
+
+def plot_commands(rollout, ax=None):
+    """Pressure commands of both muscles [bar gauge] as steps (each acts until the next sample)."""
+    ax = _axes(ax)
+    artists = [ax.step(rollout.t, rollout.command[:, 0] / 1e5, where="post", label="command A")[0],
+               ax.step(rollout.t, rollout.command[:, 1] / 1e5, where="post", label="command B")[0]]
+    ax.set_xlabel("time [s]")
+    ax.set_ylabel("command [bar gauge]")
+    ax.legend(fontsize="small")
+    return artists

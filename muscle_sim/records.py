@@ -35,9 +35,25 @@ def write_text_atomic(path, text: str) -> Path:
     return write_bytes_atomic(path, text.encode("utf-8"))
 
 
+def json_safe(obj):
+    """``obj`` with NaN/inf floats replaced by None and numpy scalars by Python ones (JSON has
+    no NaN; readers get ``null`` for 'not measured')."""
+    import math
+
+    if isinstance(obj, dict):
+        return {k: json_safe(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [json_safe(v) for v in obj]
+    if hasattr(obj, "item") and not isinstance(obj, (str, bytes)):
+        obj = obj.item()
+    if isinstance(obj, float) and not math.isfinite(obj):
+        return None
+    return obj
+
+
 def write_json_atomic(path, obj) -> Path:
-    """Atomic JSON write, indented, keys in insertion order, NaN refused."""
-    return write_text_atomic(path, json.dumps(obj, indent=2, allow_nan=False) + "\n")
+    """Atomic JSON write, indented, keys in insertion order; NaN/inf written as null."""
+    return write_text_atomic(path, json.dumps(json_safe(obj), indent=2, allow_nan=False) + "\n")
 
 
 def save_figure_atomic(fig, path, dpi: int = 110) -> Path:

@@ -1,0 +1,40 @@
+"""Shared fixtures: the demo setup and a strike-like command sequence that stays within the stops."""
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from muscle_sim.integrate import Stepper
+from muscle_sim.plant import initial_state
+from muscle_sim.simulation import Setup, home_pressures
+from muscle_sim.tasks import reference
+
+ROOT = Path(__file__).resolve().parents[1]
+DEMO = ROOT / "configs" / "flipper.yaml"
+DRIFT = ROOT / "configs" / "flipper-drift.yaml"
+
+
+@pytest.fixture(scope="session")
+def demo_setup():
+    return Setup.from_config(DEMO)
+
+
+def strike_commands(setup, n_steps=500, kp=2e5, kd=4e3):
+    """Commands of a PD-plus-inertia tracker of the planned strike, recorded on the fixed-step
+    plant; replayed open loop they give a strike that stays clear of the end stops."""
+    p, task = setup.plant, setup.task
+    hold = np.array(home_pressures(p, task))
+    t = np.arange(n_steps) * task.dt
+    r, rd, rdd = reference(task, t + 0.008)
+    stepper = Stepper(p, task.dt, task.n_substeps)
+    x0 = initial_state(p, task.home_angle, hold)
+    stepper.reset(x0, hold)
+    torque_per_pa = 6.4e-5   # rough r_p * 2 * area of the demo muscles [N m / Pa]
+    cmd = []
+    for k in range(n_steps):
+        q, qd = stepper.x[0], stepper.x[1]
+        d = p.joint.total_inertia * rdd[k] / torque_per_pa + kp * (r[k] - q) + kd * (rd[k] - qd)
+        u = np.clip(hold + np.array([d, -d]), 0.0, p.pneumatics.supply_pressure)
+        cmd.append(u)
+        stepper.step(u)
+    return x0, hold, np.array(cmd)
