@@ -50,10 +50,10 @@ def iso6358_mass_flow(conductance, critical_ratio, p_up_abs, p_down_abs, tempera
     ratio = lo / hi
     x_lin = (LINEAR_FROM - critical_ratio) / (1.0 - critical_ratio)
     shape_lin = (1.0 - x_lin * x_lin) ** subsonic_index
-    x = np.clip((ratio - critical_ratio) / (1.0 - critical_ratio), 0.0, 1.0)
-    shape = np.where(ratio <= LINEAR_FROM,
-                     (1.0 - np.minimum(x, x_lin) ** 2) ** subsonic_index,
-                     shape_lin * (1.0 - ratio) / (1.0 - LINEAR_FROM))
+    x = np.clip((ratio - critical_ratio) / (1.0 - critical_ratio), 0.0, x_lin)
+    ellipse = 1.0 - x * x
+    ellipse = np.sqrt(ellipse) if subsonic_index == 0.5 else ellipse ** subsonic_index
+    shape = np.where(ratio <= LINEAR_FROM, ellipse, shape_lin * (1.0 - ratio) / (1.0 - LINEAR_FROM))
     q = conductance * RHO0 * hi * math.sqrt(T0 / temperature) * shape
     return np.where(forward, q, -q)
 
