@@ -186,6 +186,30 @@ TASK_KEYS = _section(
                     default=math.radians(3.0), unit="deg", **_POS),
 )
 
+LEARNING_KEYS = _section(
+    method=Key("str", "update rule of the learner", default="norm-optimal",
+               choices=("norm-optimal", "gradient", "spsa")),
+    trials=Key("int", "trials of `pamjoint tune` unless --trials is given", default=12, low=1, high=100000),
+    knot_spacing=Key("time", "spacing of the profile's knots (coarser = smoother updates)", default=0.008,
+                     unit="ms", **_POS),
+    strike_weight=Key("dimensionless", "extra weight of the angle error inside the strike window", default=20.0,
+                      **_NONNEG),
+    strike_window=Key("time", "half width of the strike window", default=0.02, unit="ms", **_NONNEG),
+    speed_weight=Key("angle", "angle error in the strike window that weighs as much as 1 % strike speed error",
+                     default=math.radians(0.1), unit="deg", **_NONNEG),
+    regularisation=Key("dimensionless", "norm-optimal change penalty S relative to the mean curvature",
+                       default=0.05, **_NONNEG),
+    guard_factor=Key("dimensionless", "reject an update whose trial cost exceeds the best so far by this factor",
+                     default=2.0, low=1.0, low_open=True),
+    angle_margin=Key("angle", "keep the swing this far inside the end stops", default=math.radians(3.0),
+                     unit="deg", **_NONNEG),
+    min_pressure=Key("pressure", "lowest pressure command the learner may give", default=0.0, unit="bar", low=0),
+    max_pressure=Key("pressure", "highest pressure command (null: the rated pressure)", default=None, unit="bar",
+                     **_POS),
+    spsa_step=Key("pressure", "SPSA: size of the first update", default=2e4, unit="kPa", **_POS),
+    spsa_perturbation=Key("pressure", "SPSA: perturbation c of the first trials", default=1e4, unit="kPa", **_POS),
+)
+
 #: Declared layout of a pamjoint config (every key, its quantity, default, range and meaning).
 SCHEMA: dict = {
     "name": Key("str", "a short name for the setup", default=""),
@@ -194,6 +218,7 @@ SCHEMA: dict = {
               "sensors": SENSOR_KEYS, "drift": DRIFT_KEYS},
     "prior": PRIOR_KEYS,
     "task": TASK_KEYS,
+    "learning": LEARNING_KEYS,
     "muscle_map": MUSCLE_MAP_KEYS,
 }
 

@@ -10,3 +10,6 @@ def over_rated(requested_bar: float, rated_bar: float) -> str:
     """One-line caution for a pressure above the rated pressure (values in bar gauge)."""
     return (f"CAUTION: {requested_bar:g} bar exceeds the rated pressure {rated_bar:g} bar gauge; "
             f"values above it are for analysis only, never command them on hardware.")
+
+HARDWARE = ("Profiles made here are new commands for hardware: check the limits on the rig, start at "
+            "reduced pressure, keep clear of the sweep, and keep an emergency exhaust within reach.")

@@ -1,0 +1,232 @@
+"""Physics-informed gradient learner: trial-to-trial updates of a feedforward pressure profile from
+a measured trial, with gradients of the PRIOR model linearised along the MEASURED trajectory.
+
+Update rules (physics.md section 4):
+- ``gradient``: ``theta+ = theta + beta G^T Q e`` with ``beta = 1 / lambda_max(G^T Q G)``, inside the
+  monotone range ``0 < beta < 2 / ||G||^2`` (Owens, Hatonen & Daley 2009);
+- ``norm-optimal``: ``theta+ = theta + (G^T Q G + S)^-1 G^T Q e`` (Amann, Owens & Rogers 1996).
+``G^T Q e`` comes from the adjoint pass, ``G`` on the profile basis from forward sensitivity passes.
+Limits: the pressure box by projection; the joint angle within the stops by the velocity-level
+constraint method of Muehlebach & Jordan (JMLR 2022): only constraints violated in the measured trial
+enter, as ``grad g_i^T v + alpha g_i >= 0``. A divergence guard rejects an update after a trial whose
+cost grew beyond ``guard_factor`` times the best and falls back to the best profile with half the step.
+The learner sees only a Rollout and the prior model, exactly what a rig gives.
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import asdict, dataclass, field
+
+import numpy as np
+
+from .base import PressureProfile
+from .basis import HatBasis
+from .sensitivity import linearise, measured_states
+
+#: Muehlebach & Jordan (2022) use alpha T = 0.4; the learner's step is T = 1.
+CONSTRAINT_ALPHA = 0.4
+
+STATUS_MESSAGES = {
+    0: "update applied",
+    1: "update applied within active limits",
+    2: "trial cost grew beyond the guard factor: fell back to the best profile with half the step",
+    3: "no error to correct",
+}
+
+
+@dataclass(frozen=True)
+class LearningSettings:
+    """Learner settings (SI); see the ``learning`` section of the config."""
+
+    method: str = "norm-optimal"
+    knot_spacing: float = 0.008
+    strike_weight: float = 20.0
+    strike_window: float = 0.02
+    speed_weight: float = math.radians(0.1)
+    regularisation: float = 0.05
+    guard_factor: float = 2.0
+    angle_margin: float = math.radians(3.0)
+    min_pressure: float = 0.0
+    max_pressure: float | None = None
+    spsa_step: float = 2e4
+    spsa_perturbation: float = 1e4
+
+    @classmethod
+    def from_config(cls, cfg) -> "LearningSettings":
+        values = dict(cfg.get("learning"))
+        values.pop("trials", None)
+        return cls(**values)
+
+
+@dataclass
+class LearnerState:
+    """What the learner carries from one trial to the next (saved beside each profile)."""
+
+    theta: list                 # knot values of the profile to run next [Pa]
+    best_theta: list | None = None
+    best_cost: float | None = None
+    step_scale: float = 1.0
+    trial: int = 0
+    extra: dict = field(default_factory=dict)   # method-specific (SPSA phase, perturbation, ...)
+
+    def to_dict(self) -> dict:
+        return asdict(self)
+
+    @classmethod
+    def from_dict(cls, data: dict) -> "LearnerState":
+        return cls(**data)
+
+
+@dataclass
+class UpdateResult:
+    """Outcome of one update, in the manner of scipy's result objects."""
+
+    success: bool
+    status: int
+    message: str
+    cost: float
+    predicted_cost: float
+    step_norm_kpa: float
+    active_constraints: int
+    step_scale: float
+    accepted: bool
+
+
+class StrikeObjective:
+    """Weighted strike error of a trial: ``J = 1/2 sum w_k e_k^2 + 1/2 w_r e_r^2`` with the angle
+    error at every sample (emphasised in the strike window) and the strike-rate error."""
+
+    def __init__(self, task, settings: LearningSettings):
+        self.task = task
+        n = task.n_steps + 1
+        t = np.arange(n) * task.dt
+        window = np.abs(t - task.strike_time) <= settings.strike_window + 1e-12
+        self.w_angle = (1.0 + settings.strike_weight * window) / n
+        window_weight = float(np.sum(self.w_angle[window])) if window.any() else 1.0 / n
+        # 1 % speed error weighs like `speed_weight` of angle error over the window
+        self.w_rate = window_weight * (settings.speed_weight / (0.01 * task.strike_speed)) ** 2
+
+    def errors(self, rollout):
+        """``(e_angle (N+1,), e_rate)``: reference minus measured."""
+        e = np.asarray(rollout.reference) - np.asarray(rollout.measured[:, 0])
+        k = self.task.strike_index
+        e_rate = self.task.strike_speed - float(rollout.measured[k, 1]) if k < len(e) else 0.0
+        return e, e_rate
+
+    def cost(self, rollout) -> float:
+        e, e_rate = self.errors(rollout)
+        if e.size != self.w_angle.size:        # an aborted trial: charge what is missing heavily
+            pad = self.w_angle.size - e.size
+            e = np.concatenate([e, np.full(pad, e[-1] if e.size else 1.0)])
+        return 0.5 * float(np.sum(self.w_angle * e * e) + self.w_rate * e_rate * e_rate)
+
+
+class GradientLearner:
+    """Model-gradient learner over a hat-function profile basis (methods gradient, norm-optimal)."""
+
+    def __init__(self, setup, settings: LearningSettings):
+        self.setup = setup
+        self.settings = settings
+        self.task = setup.task
+        self.basis = HatBasis.for_grid(self.task.n_steps, self.task.dt, settings.knot_spacing)
+        self.phi = self.basis.matrix()
+        self.objective = StrikeObjective(self.task, settings)
+        top = setup.rated_pressure if settings.max_pressure is None else settings.max_pressure
+        self.p_low, self.p_high = settings.min_pressure, min(top, setup.rated_pressure)
+        j = setup.prior.joint
+        self.angle_low = j.lower_stop + settings.angle_margin
+        self.angle_high = j.upper_stop - settings.angle_margin
+
+    # -- profiles ----------------------------------------------------------------------------
+    def profile(self, theta, **meta) -> PressureProfile:
+        """The profile of knot values ``theta`` on the trial's control grid."""
+        t = np.arange(self.task.n_steps) * self.task.dt
+        return PressureProfile(t, self.basis.expand(theta), metadata=meta)
+
+    def initial_state(self, start: PressureProfile) -> LearnerState:
+        """State for a first trial with (the basis projection of) ``start``, kept within limits."""
+        theta = np.clip(self.basis.project_commands(start.commands), self.p_low, self.p_high)
+        return LearnerState(theta=theta.tolist())
+
+    # -- linear algebra on the basis ---------------------------------------------------------
+    def _columns(self, lin):
+        """``G`` on the basis: angle rows (N+1, P) and strike-rate row (P,)."""
+        n, kn = self.task.n_steps, self.basis.n_knots
+        du = np.zeros((n, 2, 2 * kn))
+        du[:, 0, :kn] = self.phi
+        du[:, 1, kn:] = self.phi
+        return lin.forward(du)
+
+    def _gradient(self, lin, e, e_rate):
+        """``G^T Q e`` on the basis by the adjoint pass."""
+        g = lin.adjoint(self.objective.w_angle * e, self.objective.w_rate * e_rate)
+        return self.basis.adjoint(g)
+
+    def _constrain(self, step, g_angle, y):
+        """Muehlebach–Jordan velocity-level projection of ``step`` for the currently violated
+        angle limits; returns (step, number of active constraints)."""
+        lo_viol = np.nonzero(y < self.angle_low)[0]
+        hi_viol = np.nonzero(y > self.angle_high)[0]
+        if lo_viol.size + hi_viol.size == 0:
+            return step, 0
+        # g_i >= 0 form: g = y - low (lower), g = high - y (upper); grad g = +-G rows
+        M = np.vstack([g_angle[lo_viol], -g_angle[hi_viol]])
+        g = np.concatenate([y[lo_viol] - self.angle_low, self.angle_high - y[hi_viol]])
+        h = -CONSTRAINT_ALPHA * g                  # M v >= h
+        from scipy.optimize import minimize
+
+        # dual of min 1/2 |v - step|^2 s.t. M v >= h: v = step + M^T mu, mu >= 0
+        MMt = M @ M.T
+        slack = M @ step - h
+
+        def dual(mu):
+            return 0.5 * mu @ MMt @ mu + mu @ slack, MMt @ mu + slack
+
+        res = minimize(dual, np.zeros(len(g)), jac=True, method="L-BFGS-B",
+                       bounds=[(0.0, None)] * len(g))
+        return step + M.T @ res.x, int(np.count_nonzero(res.x > 0))
+
+    # -- the update ----------------------------------------------------------------------------
+    def update(self, rollout, profile: PressureProfile, state: LearnerState):
+        """Next profile and state from the trial ``rollout`` run with ``profile`` (= state.theta)."""
+        theta = np.asarray(state.theta, dtype=float)
+        cost = self.objective.cost(rollout)
+        best_cost = state.best_cost
+        if best_cost is not None and cost > self.settings.guard_factor * best_cost:
+            new_state = LearnerState(theta=list(state.best_theta), best_theta=state.best_theta,
+                                     best_cost=best_cost, step_scale=0.5 * state.step_scale,
+                                     trial=state.trial + 1)
+            result = UpdateResult(True, 2, STATUS_MESSAGES[2], cost, best_cost, 0.0, 0, new_state.step_scale, False)
+            return self.profile(new_state.theta), new_state, result
+        if best_cost is None or cost < best_cost:
+            best_cost, best_theta = cost, theta.tolist()
+        else:
+            best_theta = state.best_theta
+        prior = self.setup.prior
+        x = measured_states(rollout, prior, self.task)
+        lin = linearise(prior, x, rollout.command[:-1], self.task)
+        e, e_rate = self.objective.errors(rollout)
+        grad = self._gradient(lin, e, e_rate)
+        g_angle, g_rate = self._columns(lin)
+        W = self.objective.w_angle
+        H = g_angle.T @ (W[:, None] * g_angle) + self.objective.w_rate * np.outer(g_rate, g_rate)
+        if self.settings.method == "gradient":
+            lam_max = float(np.linalg.eigvalsh(H)[-1])
+            step = grad / lam_max if lam_max > 0 else np.zeros_like(grad)
+        else:
+            reg = self.settings.regularisation * float(np.trace(H)) / H.shape[0]
+            step = np.linalg.solve(H + reg * np.eye(H.shape[0]), grad)
+        step = state.step_scale * step
+        step, active = self._constrain(step, g_angle, rollout.measured[:, 0])
+        new_theta = np.clip(theta + step, self.p_low, self.p_high)
+        applied = new_theta - theta
+        pred_e = e - g_angle @ applied
+        pred_r = e_rate - g_rate @ applied
+        predicted = 0.5 * float(np.sum(W * pred_e * pred_e) + self.objective.w_rate * pred_r * pred_r)
+        boxed = int(np.count_nonzero((new_theta <= self.p_low) | (new_theta >= self.p_high)))
+        status = 1 if (active or boxed) else 0
+        new_state = LearnerState(theta=new_theta.tolist(), best_theta=best_theta, best_cost=best_cost,
+                                 step_scale=state.step_scale, trial=state.trial + 1)
+        result = UpdateResult(True, status, STATUS_MESSAGES[status], cost, predicted,
+                              float(np.max(np.abs(applied))) / 1e3, active + boxed, state.step_scale, True)
+        return self.profile(new_state.theta), new_state, result
