@@ -92,6 +92,20 @@ class UpdateResult:
     accepted: bool
 
 
+def gradient_step(H, grad, scale: float = 1.0):
+    """Gradient ILC step ``beta G^T Q e`` with ``beta = scale / lambda_max(G^T Q G)``: for
+    ``0 < scale < 2`` inside the monotone range of Owens, Hatonen & Daley (2009)."""
+    lam_max = float(np.linalg.eigvalsh(H)[-1])
+    return scale * grad / lam_max if lam_max > 0 else np.zeros_like(grad)
+
+
+def norm_optimal_step(H, grad, regularisation: float):
+    """Norm-optimal ILC step ``(G^T Q G + S)^-1 G^T Q e`` with ``S = r mean(diag H) I``
+    (Amann, Owens & Rogers 1996)."""
+    reg = regularisation * float(np.trace(H)) / H.shape[0]
+    return np.linalg.solve(H + reg * np.eye(H.shape[0]), grad)
+
+
 class StrikeObjective:
     """Weighted strike error of a trial: ``J = 1/2 sum w_k e_k^2 + 1/2 w_r e_r^2`` with the angle
     error at every sample (emphasised in the strike window) and the strike-rate error."""
@@ -211,11 +225,9 @@ class GradientLearner:
         W = self.objective.w_angle
         H = g_angle.T @ (W[:, None] * g_angle) + self.objective.w_rate * np.outer(g_rate, g_rate)
         if self.settings.method == "gradient":
-            lam_max = float(np.linalg.eigvalsh(H)[-1])
-            step = grad / lam_max if lam_max > 0 else np.zeros_like(grad)
+            step = gradient_step(H, grad)
         else:
-            reg = self.settings.regularisation * float(np.trace(H)) / H.shape[0]
-            step = np.linalg.solve(H + reg * np.eye(H.shape[0]), grad)
+            step = norm_optimal_step(H, grad, self.settings.regularisation)
         step = state.step_scale * step
         step, active = self._constrain(step, g_angle, rollout.measured[:, 0])
         new_theta = np.clip(theta + step, self.p_low, self.p_high)

@@ -113,8 +113,34 @@ def tune(setup, method: str, trials: int, seed: int, out, resume: bool = False, 
     summary = _summary(setup, method, seed, trials, rows, best, status, message)
     theta = final_theta(learner, state)
     learner.profile(theta, method=method, final=True).write_csv(out / "final_profile.csv")
+    _plots(setup, out, rows)
     write_json_atomic(out / "summary.json", summary)
     return summary
+
+
+def _plots(setup, out: Path, rows) -> None:
+    """learning_curve.png and trajectories.png (first, best and last trial)."""
+    if not rows:
+        return
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    from muscle_sim.plotting import plot_angle, plot_learning_curve
+    from muscle_sim.records import Rollout, save_figure_atomic
+
+    fig, ax = plt.subplots(figsize=(7, 4), layout="constrained")
+    plot_learning_curve(rows, ax=ax)
+    save_figure_atomic(fig, out / "learning_curve.png")
+    plt.close(fig)
+    best = int(np.nanargmin([r["cost"] for r in rows]))
+    picks = sorted({0, best, len(rows) - 1})
+    shown = [Rollout.read_csv(_paths(out, i)[2]) for i in picks]
+    fig, ax = plt.subplots(figsize=(7, 4), layout="constrained")
+    plot_angle(shown, ax=ax, labels=[f"trial {i}" + (" (best)" if i == best else "") for i in picks])
+    save_figure_atomic(fig, out / "trajectories.png")
+    plt.close(fig)
 
 
 def _summary(setup, method, seed, trials, rows, best, status, message) -> dict:

@@ -199,6 +199,92 @@ def cmd_run(args) -> int:
     return 0
 
 
+def _metric_line(label, m) -> str:
+    def f(v, spec):
+        return format(v, spec) if isinstance(v, (int, float)) and v == v else "n/a"
+
+    return (f"{label:>20} {f(m['rms_error_deg'], '10.3f')} {f(m['strike_angle_error_deg'], '+12.3f')} "
+            f"{f(m['strike_speed_error_pct'], '+12.2f')} {f(m['peak_pressure_kpa'], '10.1f')}"
+            + (f"  FAULT: {m['fault']}" if m.get("fault") else ""))
+
+
+_METRIC_HEAD = (f"{'':>20} {'rms [deg]':>10} {'strike [deg]':>12} {'speed [%]':>12} {'peak [kPa]':>10}")
+
+
+def cmd_tune(args) -> int:
+    """Learn a feedforward profile trial by trial on the simulated plant."""
+    from controllers.base import PressureProfile
+    from controllers.tuning import tune
+    from .simulation import Setup
+
+    setup = Setup.from_config(args.config)
+    trials = args.trials if args.trials is not None else setup.config.get("learning.trials")
+    if trials < 1:
+        raise BadInput(f"--trials: {trials} is not allowed; must be >= 1")
+    method = args.method or setup.config.get("learning.method")
+    if args.resume:
+        out = Path(args.resume)
+    else:
+        out = _out_dir(args, "tune")
+    start = PressureProfile.read_csv(args.start) if args.start else None
+    if start is not None:
+        start.check_grid(setup.task.dt, setup.task.n_steps, args.start)
+    _print_cautions(setup)
+    if not args.json:
+        print(f"tuning {setup.config.source} with {method} for {trials} trials (seed {args.seed}) into {out}")
+        print(_METRIC_HEAD.replace(" " * 20, f"{'trial':>20}", 1))
+
+    def progress(row):
+        if not args.json:
+            print(_metric_line(str(row["trial"]), row), flush=True)
+        return False
+
+    try:
+        summary = tune(setup, method, trials, args.seed, out, resume=bool(args.resume), start=start,
+                       callback=progress)
+    except ValueError as exc:
+        raise BadInput(str(exc)) from None
+    if args.json:
+        from .records import json_safe
+
+        print(json.dumps(json_safe(summary), indent=2))
+        return 0
+    best = summary["trials"][summary["best_trial"]]
+    print(f"{summary['message']}; best trial {summary['best_trial']}: rms {best['rms_error_deg']:.3f} deg, "
+          f"strike {best['strike_angle_error_deg']:+.3f} deg, speed {best['strike_speed_error_pct']:+.2f} %")
+    print(f"wrote {out}/summary.json, profiles/, rollouts/, final_profile.csv, learning_curve.png, trajectories.png")
+    print(safety.GENERAL)
+    print(safety.HARDWARE)
+    return 0
+
+
+def cmd_compare(args) -> int:
+    """Compare model-only, feedback and learned control on one plant and seed."""
+    from controllers.comparison import compare
+    from .simulation import Setup
+
+    setup = Setup.from_config(args.config)
+    trials = args.trials if args.trials is not None else setup.config.get("learning.trials")
+    if trials < 1:
+        raise BadInput(f"--trials: {trials} is not allowed; must be >= 1")
+    out = _out_dir(args, "compare")
+    _print_cautions(setup)
+    data = compare(setup, trials, args.seed, out, method=args.method or setup.config.get("learning.method"))
+    if args.json:
+        from .records import json_safe
+
+        print(json.dumps(json_safe(data), indent=2))
+        return 0
+    print(f"comparison on {setup.config.source}, seed {args.seed}, after {trials} learning trials:")
+    print(_METRIC_HEAD.replace(" " * 20, f"{'controller':>20}", 1))
+    for name, m in data["controllers"].items():
+        print(_metric_line(name, m))
+    print(f"wrote {out}/comparison.json, comparison.md, overlay_angle.png, overlay_error.png")
+    print(safety.GENERAL)
+    print(safety.HARDWARE)
+    return 0
+
+
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser of all sub-commands."""
     parser = _Parser(prog="pamjoint", description="Antagonistic McKibben muscle joints: sizing, "
@@ -231,6 +317,27 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", help="output folder (default: a new folder under runs/)")
     p.add_argument("--json", action="store_true", help="print the summary as JSON")
     p.set_defaults(func=cmd_run)
+
+    p = sub.add_parser("tune", help="learn the feedforward profile of a strike trial by trial")
+    p.add_argument("config", help="YAML config")
+    p.add_argument("--trials", type=int, help="number of trials (default: learning.trials)")
+    p.add_argument("--method", choices=("norm-optimal", "gradient", "spsa"),
+                   help="update rule (default: learning.method)")
+    p.add_argument("--start", help="profile CSV to start from (default: model-only feedforward)")
+    p.add_argument("--seed", type=int, default=0, help="random seed, default 0")
+    p.add_argument("--out", help="output folder (default: a new folder under runs/)")
+    p.add_argument("--resume", metavar="DIR", help="continue an interrupted tune run in DIR")
+    p.add_argument("--json", action="store_true", help="print the summary as JSON")
+    p.set_defaults(func=cmd_tune)
+
+    p = sub.add_parser("compare", help="compare learned against model-only and feedback control")
+    p.add_argument("config", help="YAML config")
+    p.add_argument("--trials", type=int, help="learning trials (default: learning.trials)")
+    p.add_argument("--method", choices=("norm-optimal", "gradient"), help="learner (default: learning.method)")
+    p.add_argument("--seed", type=int, default=0, help="random seed, default 0")
+    p.add_argument("--out", help="output folder (default: a new folder under runs/)")
+    p.add_argument("--json", action="store_true", help="print the comparison as JSON")
+    p.set_defaults(func=cmd_compare)
     return parser
 
 

@@ -91,3 +91,18 @@ def plot_commands(rollout, ax=None):
     ax.set_ylabel("command [bar gauge]")
     ax.legend(fontsize="small")
     return artists
+
+
+def plot_learning_curve(rows, ax=None):
+    """Swing RMS error and |strike angle error| per trial [deg] on a log scale."""
+    ax = _axes(ax)
+    trials = [r["trial"] for r in rows]
+    rms = [r["rms_error_deg"] for r in rows]
+    strike = [abs(r["strike_angle_error_deg"]) if r["strike_angle_error_deg"] is not None else np.nan for r in rows]
+    artists = [ax.semilogy(trials, rms, marker="o", label="swing RMS error")[0],
+               ax.semilogy(trials, strike, marker="s", label="|strike angle error|")[0]]
+    ax.set_xlabel("trial")
+    ax.set_ylabel("error [deg]")
+    ax.grid(True, which="both", alpha=0.3)
+    ax.legend(fontsize="small")
+    return artists
