@@ -380,6 +380,13 @@ def _check_cross(cfg: Config) -> None:
                                                 - round(task["strike_time"] * task["control_rate"])) > 1e-6:
         raise ConfigError(f"task.control_rate: {task['control_rate']:g} Hz is not allowed; trial_length and "
                           f"strike_time must be whole numbers of control steps")
+    learn = cfg.get("learning")
+    if learn["max_pressure"] is not None and learn["max_pressure"] > muscle.rated_pressure:
+        raise ConfigError(f"learning.max_pressure: {learn['max_pressure'] / 1e5:g} bar is not allowed; must be <= "
+                          f"plant.muscle.rated_pressure {muscle.rated_pressure / 1e5:g} bar")
+    if learn["max_pressure"] is not None and learn["min_pressure"] >= learn["max_pressure"]:
+        raise ConfigError(f"learning.min_pressure: {learn['min_pressure'] / 1e5:g} bar is not allowed; must be < "
+                          f"learning.max_pressure {learn['max_pressure'] / 1e5:g} bar")
     plant_params(cfg)
     prior_params(cfg)
     sensor_params(cfg)
