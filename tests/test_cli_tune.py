@@ -1,0 +1,76 @@
+"""`pamjoint tune` and `pamjoint compare`: run folders, kill -9 and resume, comparison contract."""
+import json
+import os
+import signal
+import subprocess
+import sys
+import time
+
+import pytest
+
+from muscle_sim import cli
+
+from conftest import DEMO
+
+METRICS = ("rms_error_deg", "strike_angle_error_deg", "strike_speed_error_pct", "peak_pressure_kpa")
+
+
+def test_tune_writes_every_trial(tmp_path, capsys):
+    out = tmp_path / "t"
+    assert cli.main(["tune", str(DEMO), "--trials", "3", "--out", str(out)]) == 0
+    printed = capsys.readouterr().out
+    assert "SAFETY" in printed and "reduced pressure" in printed
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["status"] == 0 and summary["best_trial"] in (0, 1, 2)
+    assert [r["trial"] for r in summary["trials"]] == [0, 1, 2]
+    for row in summary["trials"]:
+        assert all(k in row for k in METRICS)
+    for i in range(3):
+        assert (out / "profiles" / f"profile-{i:04d}.csv").exists()
+        assert (out / "rollouts" / f"trial-{i:04d}.csv").exists()
+    for name in ("final_profile.csv", "learning_curve.png", "trajectories.png"):
+        assert (out / name).exists()
+
+
+def test_kill_9_then_resume_matches_an_uninterrupted_run(tmp_path):
+    full, cut = tmp_path / "full", tmp_path / "cut"
+    args = [sys.executable, "-m", "muscle_sim.cli", "tune", str(DEMO), "--trials", "8", "--seed", "3"]
+    subprocess.run(args + ["--out", str(full)], check=True, capture_output=True)
+    proc = subprocess.Popen(args + ["--out", str(cut)], stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    deadline = time.time() + 60
+    while time.time() < deadline:
+        summary = cut / "summary.json"
+        if summary.exists() and len(json.loads(summary.read_text())["trials"]) >= 3:
+            break
+        time.sleep(0.01)
+    os.kill(proc.pid, signal.SIGKILL)
+    proc.wait()
+    done = len(json.loads((cut / "summary.json").read_text())["trials"])
+    assert 3 <= done
+    assert not list(cut.rglob("*.part")) or all(p.name.startswith(".") for p in cut.rglob("*.part"))
+    subprocess.run(args + ["--resume", str(cut)], check=True, capture_output=True)
+    a = json.loads((full / "summary.json").read_text())
+    b = json.loads((cut / "summary.json").read_text())
+    assert a["trials"] == b["trials"]
+    assert (full / "final_profile.csv").read_bytes() == (cut / "final_profile.csv").read_bytes()
+
+
+def test_resume_of_a_foreign_folder_is_refused(tmp_path):
+    run = subprocess.run([sys.executable, "-m", "muscle_sim.cli", "tune", str(DEMO), "--resume", str(tmp_path)],
+                         capture_output=True, text=True)
+    assert run.returncode == 2 and "--resume" in run.stderr and run.stderr.count("\n") == 1
+
+
+def test_compare_writes_the_table_of_all_controllers(tmp_path, capsys):
+    out = tmp_path / "c"
+    assert cli.main(["compare", str(DEMO), "--trials", "8", "--out", str(out)]) == 0
+    data = json.loads((out / "comparison.json").read_text())
+    names = {"model-only", "feedback", "model-only+feedback", "learned", "learned+feedback", "spsa"}
+    assert set(data["controllers"]) == names
+    for m in data["controllers"].values():
+        assert all(k in m for k in METRICS)
+    learned, model = data["controllers"]["learned"], data["controllers"]["model-only"]
+    for key in ("rms_error_deg", "strike_angle_error_deg", "strike_speed_error_pct"):
+        assert abs(learned[key]) < abs(model[key])
+    assert "| learned |" in (out / "comparison.md").read_text()
+    assert (out / "overlay_angle.png").exists()
