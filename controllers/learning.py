@@ -164,17 +164,13 @@ class GradientLearner:
 
     # -- linear algebra on the basis ---------------------------------------------------------
     def _columns(self, lin):
-        """``G`` on the basis: angle rows (N+1, P) and strike-rate row (P,)."""
-        n, kn = self.task.n_steps, self.basis.n_knots
+        """``G`` on the basis by forward passes: angle rows (n+1, P) and strike-rate row (P,)
+        over the ``n`` steps the linearisation covers."""
+        n, kn = lin.n_steps, self.basis.n_knots
         du = np.zeros((n, 2, 2 * kn))
-        du[:, 0, :kn] = self.phi
-        du[:, 1, kn:] = self.phi
+        du[:, 0, :kn] = self.phi[:n]
+        du[:, 1, kn:] = self.phi[:n]
         return lin.forward(du)
-
-    def _gradient(self, lin, e, e_rate):
-        """``G^T Q e`` on the basis by the adjoint pass."""
-        g = lin.adjoint(self.objective.w_angle * e, self.objective.w_rate * e_rate)
-        return self.basis.adjoint(g)
 
     def _constrain(self, step, g_angle, y):
         """Muehlebach–Jordan velocity-level projection of ``step`` for the currently violated
@@ -206,7 +202,8 @@ class GradientLearner:
         theta = np.asarray(state.theta, dtype=float)
         cost = self.objective.cost(rollout)
         best_cost = state.best_cost
-        if best_cost is not None and cost > self.settings.guard_factor * best_cost:
+        aborted = len(rollout.t) < self.task.n_steps + 1
+        if best_cost is not None and (aborted or cost > self.settings.guard_factor * best_cost):
             new_state = LearnerState(theta=list(state.best_theta), best_theta=state.best_theta,
                                      best_cost=best_cost, step_scale=0.5 * state.step_scale,
                                      trial=state.trial + 1)
@@ -220,10 +217,13 @@ class GradientLearner:
         x = measured_states(rollout, prior, self.task)
         lin = linearise(prior, x, rollout.command[:-1], self.task)
         e, e_rate = self.objective.errors(rollout)
-        grad = self._gradient(lin, e, e_rate)
+        n_avail = len(e)          # an aborted first trial: learn from the part that ran
+        W = self.objective.w_angle[:n_avail]
+        w_rate = self.objective.w_rate if self.task.strike_index < n_avail else 0.0
+        grad = self.basis.adjoint(np.vstack([lin.adjoint(W * e, w_rate * e_rate),
+                                             np.zeros((self.task.n_steps - lin.n_steps, 2))]))
         g_angle, g_rate = self._columns(lin)
-        W = self.objective.w_angle
-        H = g_angle.T @ (W[:, None] * g_angle) + self.objective.w_rate * np.outer(g_rate, g_rate)
+        H = g_angle.T @ (W[:, None] * g_angle) + w_rate * np.outer(g_rate, g_rate)
         if self.settings.method == "gradient":
             step = gradient_step(H, grad)
         else:
@@ -234,7 +234,7 @@ class GradientLearner:
         applied = new_theta - theta
         pred_e = e - g_angle @ applied
         pred_r = e_rate - g_rate @ applied
-        predicted = 0.5 * float(np.sum(W * pred_e * pred_e) + self.objective.w_rate * pred_r * pred_r)
+        predicted = 0.5 * float(np.sum(W * pred_e * pred_e) + w_rate * pred_r * pred_r)
         boxed = int(np.count_nonzero((new_theta <= self.p_low) | (new_theta >= self.p_high)))
         status = 1 if (active or boxed) else 0
         new_state = LearnerState(theta=new_theta.tolist(), best_theta=best_theta, best_cost=best_cost,

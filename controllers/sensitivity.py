@@ -55,14 +55,16 @@ class Linearisation:
         dx = np.zeros((_NX,) + tail)
         angles = np.zeros((self.n_steps + 1,) + tail)
         rate = np.zeros(tail)
+        flat = du.reshape(du.shape[0], 2, -1)
+        dx = dx.reshape(_NX, -1)
         for k in range(self.n_steps):
             src = k - self.delay
-            dx = np.tensordot(self.A[k], dx, axes=(1, 0))
+            dx = self.A[k] @ dx
             if src >= 0:
-                dx = dx + np.tensordot(self.B[k], du[src], axes=(1, 0))
-            angles[k + 1] = dx[0]
+                dx = dx + self.B[k] @ flat[src]
+            angles[k + 1] = dx[0].reshape(tail)
             if k + 1 == self.strike_index:
-                rate = dx[1].copy()
+                rate = dx[1].reshape(tail).copy()
         return angles, rate
 
     def adjoint(self, w_angle, w_rate: float = 0.0) -> np.ndarray:
