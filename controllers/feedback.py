@@ -14,11 +14,21 @@ from muscle_sim.tasks import reference
 class PIDController:
     """``delta = kp e + ki int(e) + kd de/dt`` added to muscle A and taken from muscle B.
 
-    ``e = r - angle`` from the measured angle and rate. Default gains place a critically damped
-    pair (``damping``) at ``bandwidth_hz`` on the prior model: ``kp = J w^2 / k``,
-    ``kd = 2 zeta J w / k``, ``ki = kp w / 10``, with ``k = r_p (A_a + A_b)`` the torque per pascal
-    of differential pressure at home (common practice for pole placement on a double integrator).
-    Anti-windup by conditional integration: the integrator holds while the output saturates.
+    ``e = r - angle``, ``de/dt = r' - rate`` from the measured angle and rate (readings
+    [angle, rate, p_a, p_b]); commands ``base + (delta, -delta)`` clipped to [0, rated], where
+    ``base`` is the feedforward row k (a :class:`PressureProfile` or a controller holding one as
+    ``.profile``), else ``base_pressures`` [Pa], else the prior's home-holding pressures.
+
+    Gains left ``None`` come from the PRIOR model (pole placement on the double integrator
+    ``J qdd = k delta``, common practice): ``kp = J w^2 / k``, ``kd = 2 zeta J w / k``,
+    ``ki = kp w / 10`` with ``w = 2 pi bandwidth_hz``, ``zeta = damping`` and
+    ``k = r_p (A_a + A_b)`` the torque per pascal of differential pressure at the home angle. The
+    bandwidth must stay well below what the prior's pressure delay and lag allow: the 6 Hz default
+    costs ``w T_d + atan(w tau_p)`` = about 42 deg of phase on the demo prior (6 ms, 15 ms).
+
+    Anti-windup: conditional integration (the error is integrated only while the output is not
+    saturated in the direction the error would push it), and ``|ki I|`` is clamped to the rated
+    pressure.
     """
 
     def __init__(self, kp=None, ki=None, kd=None, feedforward=None, base_pressures=None, name=None,
@@ -44,10 +54,11 @@ class PIDController:
         t = np.arange(task.n_steps) * task.dt
         self._r, self._rd, _ = reference(task, t)
         if self.feedforward is not None:
-            self.feedforward.check_grid(task.dt, task.n_steps, "feedforward")
-            self._base = np.asarray(self.feedforward.commands, dtype=float)
+            profile = getattr(self.feedforward, "profile", self.feedforward)
+            profile.check_grid(task.dt, task.n_steps, "feedforward")
+            self._base = np.asarray(profile.commands, dtype=float)
         else:
-            base = self.base_pressures or home_pressures(prior, task)
+            base = self.base_pressures if self.base_pressures is not None else home_pressures(prior, task)
             self._base = np.tile(np.asarray(base, dtype=float), (task.n_steps, 1))
         self._dt = task.dt
         self._top = setup.rated_pressure

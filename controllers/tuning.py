@@ -14,7 +14,7 @@ from pathlib import Path
 import numpy as np
 
 from muscle_sim import safety
-from muscle_sim.records import write_json_atomic
+from muscle_sim.records import read_log, write_json_atomic
 from muscle_sim.runs import run_trial
 
 from .learning import GradientLearner, LearnerState, LearningSettings
@@ -94,7 +94,9 @@ def tune(setup, method: str, trials: int, seed: int, out, resume: bool = False, 
         rollout, metrics = run_trial(setup, ReplayProfile(profile, name=method), i, trial_rng(seed, i), seed)
         _, _, rpath = _paths(out, i)
         rollout.write_csv(rpath)
-        next_profile, state, result = learner.update(rollout, profile, state)
+        # learn from the log as written, exactly as `pamjoint learn-step` reads it from a rig
+        logged = read_log(rpath, setup.task, allow_short=True)
+        next_profile, state, result = learner.update(logged, profile, state)
         p, s, _ = _paths(out, i + 1)
         learner.profile(state.theta, trial=i + 1, method=method).write_csv(p)
         write_json_atomic(s, state.to_dict())

@@ -153,3 +153,137 @@ class Rollout:
         data = _np.array(rows)
         si = data / _np.array([f for _, f in ROLLOUT_COLUMNS])
         return cls(t=si[:, 0], measured=si[:, 1:5], command=si[:, 5:7], reference=si[:, 7], metadata=meta)
+
+
+#: Trial-log columns a rig may give: name -> (allowed units with their factor to SI, required).
+LOG_COLUMNS = {
+    "time": ({"s": 1.0, "ms": 1e-3}, True),
+    "angle": ({"deg": _math.pi / 180.0, "rad": 1.0}, True),
+    "rate": ({"deg/s": _math.pi / 180.0, "rad/s": 1.0}, False),
+    "pressure_a": ({"kPa": 1e3, "bar": 1e5, "Pa": 1.0}, False),
+    "pressure_b": ({"kPa": 1e3, "bar": 1e5, "Pa": 1.0}, False),
+    "command_a": ({"kPa": 1e3, "bar": 1e5, "Pa": 1.0}, True),
+    "command_b": ({"kPa": 1e3, "bar": 1e5, "Pa": 1.0}, True),
+    "reference": ({"deg": _math.pi / 180.0, "rad": 1.0}, False),
+}
+
+
+def _parse_header(path, header):
+    out = {}
+    for i, cell in enumerate(header):
+        cell = cell.strip()
+        if "[" not in cell or not cell.endswith("]"):
+            raise DataError(f"{path}: column {i + 1} {cell!r} is not allowed; write 'name [unit]', e.g. 'angle [deg]'")
+        name, unit = cell[:-1].split("[", 1)
+        name, unit = name.strip(), unit.strip()
+        if name not in LOG_COLUMNS:
+            raise DataError(f"{path}: column {cell!r} is unknown; allowed: {', '.join(LOG_COLUMNS)}")
+        units = LOG_COLUMNS[name][0]
+        if unit not in units:
+            raise DataError(f"{path}: column {cell!r}: unit '{unit}' is not allowed; must be one of {', '.join(units)}")
+        if name in out:
+            raise DataError(f"{path}: column {name!r} appears twice")
+        out[name] = (i, units[unit])
+    missing = [n for n, (_, req) in LOG_COLUMNS.items() if req and n not in out]
+    if missing:
+        raise DataError(f"{path}: missing column(s) {', '.join(missing)}; required: time, angle, command_a, command_b")
+    return out
+
+
+def read_log(path, task, resample: bool = False, allow_short: bool = False) -> "Rollout":
+    """Read a trial log (simulator rollout or rig CSV) for the learner, checked against the task.
+
+    Required columns ``time``, ``angle``, ``command_a``, ``command_b``; optional ``rate`` (else a
+    central difference of the angle), ``pressure_a``/``pressure_b`` (else NaN: the learner then
+    drives the prior's pressure model with the commands) and ``reference`` (else the task's). Each
+    header names its unit, e.g. ``angle [deg]``. The time must start at 0 and follow the task's
+    control grid; with ``resample=True`` an irregular log is linearly resampled onto it instead;
+    ``allow_short=True`` accepts a trial that was stopped early (a prefix of the grid).
+    Errors are one line naming the row and column.
+    """
+    try:
+        lines = Path(path).read_text(encoding="utf-8").splitlines()
+    except OSError as exc:
+        raise DataError(f"log: cannot read {str(path)!r}: {exc.strerror or exc}") from None
+    meta = {}
+    if lines and lines[0].startswith("#"):
+        try:
+            meta = json.loads(lines[0][1:].strip() or "{}")
+        except json.JSONDecodeError:
+            meta = {}
+        lines = lines[1:]
+    if not lines:
+        raise DataError(f"{path}: empty log")
+    header = [h for h in lines[0].split(",")]
+    cols = _parse_header(path, header)
+    names = [c.strip() for c in header]
+    rows = []
+    for r, line in enumerate(lines[1:], start=2):
+        cells = line.split(",")
+        if len(cells) != len(header):
+            raise DataError(f"{path}: row {r} has {len(cells)} cells; must have {len(header)}")
+        row = []
+        for c, cell in enumerate(cells):
+            try:
+                v = float(cell)
+            except ValueError:
+                raise DataError(f"{path}: row {r}, column {names[c]!r}: {cell.strip()!r} is not a number") from None
+            if not _math.isfinite(v):
+                raise DataError(f"{path}: row {r}, column {names[c]!r}: {cell.strip()!r} is not allowed; must be finite")
+            row.append(v)
+        rows.append(row)
+    if len(rows) < 2:
+        raise DataError(f"{path}: {len(rows)} data row(s); a trial needs {task.n_steps + 1}")
+    data = _np.array(rows)
+
+    def col(name):
+        i, factor = cols[name]
+        return data[:, i] * factor
+
+    t = col("time")
+    dt = _np.diff(t)
+    if _np.any(dt <= 0):
+        r = int(_np.nonzero(dt <= 0)[0][0]) + 3
+        raise DataError(f"{path}: row {r}, column {names[cols['time'][0]]!r}: time does not increase")
+    grid = _np.arange(task.n_steps + 1) * task.dt
+    off = _np.abs(t[: grid.size] - grid[: t.size]) > 1e-6 * task.dt + 1e-9
+    on_grid = (t.size == grid.size or (allow_short and t.size < grid.size)) and not off.any()
+    if not on_grid and not resample:
+        if t.size != grid.size and not off.any():
+            raise DataError(f"{path}: {t.size} rows is not allowed; the task's trial has {grid.size} samples "
+                            f"({task.dt * 1e3:g} ms apart from 0 to {grid[-1]:g} s); use resampling if this is intended")
+        r = int(_np.nonzero(off)[0][0])
+        gap = " (a gap)" if r > 0 and dt[r - 1] > 1.5 * task.dt else ""
+        raise DataError(f"{path}: row {r + 2}, column {names[cols['time'][0]]!r}: {t[r]:g} s is not allowed; must be "
+                        f"{grid[r]:g} s on the {task.dt * 1e3:g} ms control grid{gap}; resample if intended")
+    values = {}
+    for name in LOG_COLUMNS:
+        if name in cols and name != "time":
+            values[name] = col(name)
+    if not on_grid:
+        if t[0] > 1e-9 or t[-1] < grid[-1] - 1e-9:
+            raise DataError(f"{path}: time spans {t[0]:g} to {t[-1]:g} s; resampling needs 0 to {grid[-1]:g} s")
+        for name, v in values.items():
+            if name.startswith("command"):       # commands are held, not interpolated
+                idx = _np.searchsorted(t, grid, side="right") - 1
+                values[name] = v[_np.clip(idx, 0, t.size - 1)]
+            else:
+                values[name] = _np.interp(grid, t, v)
+        t = grid
+    angle = values["angle"]
+    rate = values.get("rate")
+    if rate is None:
+        rate = _np.gradient(angle, t)
+    pa = values.get("pressure_a", _np.full(t.size, _np.nan))
+    pb = values.get("pressure_b", _np.full(t.size, _np.nan))
+    ref = values.get("reference")
+    if ref is None:
+        from .tasks import reference as _reference
+
+        ref = _reference(task, t)[0]
+    measured = _np.column_stack([angle, rate, pa, pb])
+    command = _np.column_stack([values["command_a"], values["command_b"]])
+    if _np.any(command < 0):
+        r, c = _np.argwhere(command < 0)[0]
+        raise DataError(f"{path}: row {r + 2}, column 'command_{'ab'[c]}': negative gauge command is not allowed")
+    return Rollout(t=t, measured=measured, command=command, reference=ref, metadata=meta)
