@@ -4,6 +4,8 @@ from __future__ import annotations
 import argparse
 import json
 import math
+
+import numpy as np
 import sys
 from pathlib import Path
 
@@ -285,6 +287,51 @@ def cmd_compare(args) -> int:
     return 0
 
 
+def cmd_learn_step(args) -> int:
+    """One learning step from a logged trial: the next profile for the rig."""
+    from controllers.base import PressureProfile
+    from controllers.rig import learn_step, load_state, state_path_for
+    from .records import read_log, write_json_atomic
+    from .simulation import Setup
+
+    setup = Setup.from_config(args.config)
+    profile = PressureProfile.read_csv(args.profile)
+    log = read_log(args.rollout, setup.task, resample=args.resample, allow_short=True)
+    state = load_state(args.state) if args.state else None
+    new_profile, new_state, result = learn_step(setup, log, profile, state, args.method)
+    out = Path(args.out)
+    new_profile.metadata.update({"from_rollout": str(args.rollout), "method": args.method or
+                                 setup.config.get("learning.method")})
+    new_profile.write_csv(out)
+    state_file = state_path_for(out)
+    write_json_atomic(state_file, new_state.to_dict())
+    report = {"cost": result.cost, "predicted_cost": result.predicted_cost, "status": result.status,
+              "message": result.message, "accepted": result.accepted, "active_limits": result.active_constraints,
+              "largest_change_kpa": result.step_norm_kpa, "profile": str(out), "state": str(state_file),
+              "peak_command_kpa": float(new_profile.commands.max()) / 1e3,
+              "safety": safety.GENERAL + " " + safety.HARDWARE}
+    from .tasks import strike_metrics
+
+    m = strike_metrics(setup.task, log.measured[:, 0], log.measured[:, 1],
+                       log.measured[:, 2:4][np.isfinite(log.measured[:, 2:4])])
+    report["logged_trial"] = {k: m[k] for k in ("rms_error_deg", "strike_angle_error_deg", "strike_speed_error_pct")}
+    if args.json:
+        from .records import json_safe
+
+        print(json.dumps(json_safe(report), indent=2))
+        return 0
+    lt = report["logged_trial"]
+    print(f"logged trial: rms {lt['rms_error_deg']:.3f} deg, strike angle {lt['strike_angle_error_deg']:+.3f} deg, "
+          f"strike speed {lt['strike_speed_error_pct']:+.2f} %")
+    print(f"update: {result.message}; cost {result.cost:.4g} -> predicted {result.predicted_cost:.4g}; "
+          f"active limits {result.active_constraints}; largest change {result.step_norm_kpa:.1f} kPa; "
+          f"peak command {report['peak_command_kpa']:.0f} kPa")
+    print(f"wrote {out} and {state_file}")
+    print(safety.GENERAL)
+    print(safety.HARDWARE)
+    return 0
+
+
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser of all sub-commands."""
     parser = _Parser(prog="pamjoint", description="Antagonistic McKibben muscle joints: sizing, "
@@ -338,6 +385,17 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", help="output folder (default: a new folder under runs/)")
     p.add_argument("--json", action="store_true", help="print the comparison as JSON")
     p.set_defaults(func=cmd_compare)
+
+    p = sub.add_parser("learn-step", help="next profile from a trial logged on the rig (same learner as tune)")
+    p.add_argument("--rollout", required=True, help="trial log CSV (time, angle, [rate], [pressures], commands)")
+    p.add_argument("--profile", required=True, help="the profile CSV the trial ran")
+    p.add_argument("--config", required=True, help="YAML config of the rig")
+    p.add_argument("--out", required=True, help="where to write the next profile CSV (state saved beside)")
+    p.add_argument("--state", help="learner state saved beside the profile (default: start fresh)")
+    p.add_argument("--method", choices=("norm-optimal", "gradient"), help="update rule (default: learning.method)")
+    p.add_argument("--resample", action="store_true", help="resample an irregular log onto the control grid")
+    p.add_argument("--json", action="store_true", help="print the report as JSON")
+    p.set_defaults(func=cmd_learn_step)
     return parser
 
 

@@ -1,0 +1,115 @@
+"""`pamjoint learn-step`: the rig loop runs the very code of `tune`; trial logs are validated."""
+import json
+import subprocess
+import sys
+
+import numpy as np
+import pytest
+
+from controllers.tuning import tune
+from muscle_sim import cli
+from muscle_sim.records import read_log
+from muscle_sim.simulation import Setup
+
+from conftest import DEMO
+
+
+@pytest.fixture(scope="module")
+def tune_dir(tmp_path_factory):
+    out = tmp_path_factory.mktemp("tune")
+    tune(Setup.from_config(DEMO), "norm-optimal", 4, 2, out)
+    return out
+
+
+@pytest.mark.parametrize("k", [0, 2])
+def test_learn_step_reproduces_the_tune_runs_next_profile(tune_dir, tmp_path, k):
+    nxt = tmp_path / "next.csv"
+    args = ["learn-step", "--rollout", str(tune_dir / "rollouts" / f"trial-{k:04d}.csv"),
+            "--profile", str(tune_dir / "profiles" / f"profile-{k:04d}.csv"),
+            "--state", str(tune_dir / "profiles" / f"state-{k:04d}.json"),
+            "--config", str(DEMO), "--out", str(nxt)]
+    assert cli.main(args) == 0
+    want = json.loads((tune_dir / "profiles" / f"state-{k + 1:04d}.json").read_text())
+    got = json.loads((tmp_path / "next.state.json").read_text())
+    assert got == want
+    theirs = (tune_dir / "profiles" / f"profile-{k + 1:04d}.csv").read_text().splitlines()[1:]
+    ours = nxt.read_text().splitlines()[1:]
+    assert ours == theirs
+
+
+def _write(path, header, rows):
+    path.write_text(",".join(header) + "\n" + "\n".join(",".join(f"{v:.9g}" for v in r) for r in rows) + "\n")
+
+
+def _rig_log(tune_dir, tmp_path, name="log.csv", drop=(), edit=None):
+    """A rig-style log made from trial 0: only time, angle and commands (no rate, no pressures)."""
+    r = read_log(tune_dir / "rollouts" / "trial-0000.csv", Setup.from_config(DEMO).task)
+    rows = np.column_stack([r.t, np.degrees(r.measured[:, 0]), r.command / 1e3])
+    header = ["time [s]", "angle [deg]", "command_a [kPa]", "command_b [kPa]"]
+    if edit:
+        header, rows = edit(header, rows)
+    path = tmp_path / name
+    _write(path, header, rows)
+    return path
+
+
+def test_a_log_without_rate_or_pressures_still_learns(tune_dir, tmp_path, capsys):
+    log = _rig_log(tune_dir, tmp_path)
+    assert cli.main(["learn-step", "--rollout", str(log), "--profile", str(tune_dir / "profiles" / "profile-0000.csv"),
+                     "--config", str(DEMO), "--out", str(tmp_path / "n.csv"), "--json"]) == 0
+    report = json.loads(capsys.readouterr().out)
+    assert report["predicted_cost"] < 0.2 * report["cost"]
+    assert "reduced pressure" in report["safety"]
+
+
+def _fails(args, expect):
+    run = subprocess.run([sys.executable, "-m", "muscle_sim.cli", *args], capture_output=True, text=True)
+    assert run.returncode == 2, run.stderr
+    assert run.stderr.count("\n") == 1 and expect in run.stderr, run.stderr
+
+
+def _edit_row(i, col, value):
+    def edit(header, rows):
+        rows = rows.copy()
+        rows[i, col] = value
+        return header, rows
+    return edit
+
+
+@pytest.mark.parametrize("edit, expect", [
+    (_edit_row(10, 0, 0.0185), "row 12, column 'time [s]'"),                 # irregular sample
+    (_edit_row(10, 0, 0.0150), "time does not increase"),                     # non-monotonic
+    (lambda h, r: (h, np.delete(r, [50, 51, 52], axis=0)), "a gap"),          # missing samples
+    (_edit_row(20, 1, np.nan), "row 22, column 'angle [deg]'"),               # NaN
+    (lambda h, r: (["time [s]", "angle [grad]", *h[2:]], r), "unit 'grad'"),  # wrong unit
+    (lambda h, r: (h[:3], r[:, :3]), "missing column(s) command_b"),
+])
+def test_bad_logs_give_one_line_errors(tune_dir, tmp_path, edit, expect):
+    log = _rig_log(tune_dir, tmp_path, edit=edit)
+    _fails(["learn-step", "--rollout", str(log), "--profile", str(tune_dir / "profiles" / "profile-0000.csv"),
+            "--config", str(DEMO), "--out", str(tmp_path / "n.csv")], expect)
+    assert not (tmp_path / "n.csv").exists()
+
+
+def test_resampling_only_when_asked(tune_dir, tmp_path):
+    def shifted(header, rows):
+        rows = rows.copy()
+        rows[1:-1, 0] += 0.0003          # jittered clock
+        return header, rows
+
+    log = _rig_log(tune_dir, tmp_path, edit=shifted)
+    args = ["learn-step", "--rollout", str(log), "--profile", str(tune_dir / "profiles" / "profile-0000.csv"),
+            "--config", str(DEMO), "--out", str(tmp_path / "n.csv")]
+    _fails(args, "resample if intended")
+    assert cli.main(args + ["--resample"]) == 0
+
+
+def test_profile_not_on_the_grid_or_not_matching_the_state(tune_dir, tmp_path):
+    bad = tmp_path / "p.csv"
+    bad.write_text("time [s],command_a [kPa],command_b [kPa]\n0,200,300\n0.004,200,300\n")
+    _fails(["learn-step", "--rollout", str(tune_dir / "rollouts" / "trial-0000.csv"), "--profile", str(bad),
+            "--config", str(DEMO), "--out", str(tmp_path / "n.csv")], "--profile")
+    _fails(["learn-step", "--rollout", str(tune_dir / "rollouts" / "trial-0001.csv"),
+            "--profile", str(tune_dir / "profiles" / "profile-0001.csv"),
+            "--state", str(tune_dir / "profiles" / "state-0003.json"),
+            "--config", str(DEMO), "--out", str(tmp_path / "n.csv")], "does not match --state")
