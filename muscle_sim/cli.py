@@ -332,6 +332,77 @@ def cmd_learn_step(args) -> int:
     return 0
 
 
+def cmd_calibrate(args) -> int:
+    """Fit the muscle model to static bench data."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    from .calibration import calibrate, config_snippet, model_force, read_bench_csv
+    from .params import McKibbenParams
+    from .records import save_figure_atomic, write_json_atomic, write_text_atomic
+
+    if args.config:
+        from . import config as cfgmod
+
+        base = cfgmod.muscle_params(cfgmod.load(args.config))
+    else:
+        if not (args.rest_length and args.rest_radius):
+            raise BadInput("--config: missing; give a config, or --rest-length and --rest-radius (e.g. '250 mm')")
+        try:
+            base = McKibbenParams(rest_length=to_si(args.rest_length, "length"),
+                                  rest_radius=to_si(args.rest_radius, "length"),
+                                  rest_braid_angle=to_si(args.braid_angle, "angle"))
+        except UnitError as exc:
+            raise BadInput(str(exc)) from None
+    data = read_bench_csv(args.data, base.rest_length)
+    result = calibrate(base, data)
+    out = _out_dir(args, "calibrate")
+    snippet = config_snippet(result)
+    shown = {"end_correction": (1.0, ""), "rest_braid_angle": (180 / math.pi, "deg"), "braid_friction": (1.0, "")}
+    report = {"data": str(args.data), "points": int(data.force.size), "success": result.success,
+              "message": result.message, "residual_rms_n": result.residual_rms,
+              "parameters": {n: {"value": float(v) * shown[n][0], "std": float(sd) * shown[n][0], "unit": shown[n][1]}
+                             for n, v, sd in zip(result.names, result.values, result.std)},
+              "snippet": snippet}
+    fig, ax = plt.subplots(figsize=(7, 4.5), layout="constrained")
+    for pressure in np.unique(data.pressure):
+        sel = data.pressure == pressure
+        pts = ax.plot(100 * data.contraction[sel], data.force[sel], ".", ms=4)[0]
+        for d, style in ((1.0, "-"), (-1.0, "--"), (0.0, ":")):
+            sub = sel & (data.direction == d)
+            if sub.any():
+                eps = np.linspace(data.contraction[sub].min(), data.contraction[sub].max(), 60)
+                from .calibration import BenchData
+
+                grid = BenchData(np.full(60, pressure), eps, np.zeros(60), np.full(60, d))
+                fric = result.params.braid_friction if "braid_friction" in result.names else 0.0
+                ax.plot(100 * eps, model_force(result.params, grid, result.params.end_correction,
+                                               result.params.rest_braid_angle, fric), style, color=pts.get_color(), lw=1)
+        pts.set_label(f"{pressure / 1e5:g} bar")
+    ax.set_xlabel("contraction [%]")
+    ax.set_ylabel("force [N]")
+    ax.set_title("bench data (dots), fitted model (solid: shortening, dashed: lengthening)", fontsize="small")
+    ax.legend(fontsize="small")
+    save_figure_atomic(fig, out / "calibration_fit.png")
+    plt.close(fig)
+    write_text_atomic(out / "fitted_muscle.yaml", snippet)
+    write_json_atomic(out / "calibration.json", report)
+    if args.json:
+        from .records import json_safe
+
+        print(json.dumps(json_safe(report), indent=2))
+        return 0
+    print(f"fitted {data.force.size} bench points of {args.data}: {result.message}")
+    for n, prm in report["parameters"].items():
+        print(f"  {n:18s} {prm['value']:.5g} +- {prm['std']:.2g} {prm['unit']}")
+    print(f"  residual rms {result.residual_rms:.3g} N")
+    print(snippet, end="")
+    print(f"wrote {out}/calibration.json, fitted_muscle.yaml, calibration_fit.png")
+    return 0
+
+
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser of all sub-commands."""
     parser = _Parser(prog="pamjoint", description="Antagonistic McKibben muscle joints: sizing, "
@@ -396,6 +467,17 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--resample", action="store_true", help="resample an irregular log onto the control grid")
     p.add_argument("--json", action="store_true", help="print the report as JSON")
     p.set_defaults(func=cmd_learn_step)
+
+    p = sub.add_parser("calibrate", help="fit the muscle model to static bench data")
+    p.add_argument("data", help="bench CSV: pressure [bar], length [mm] or contraction [%%], force [N], "
+                   "optional direction [-] (+1 shortening, -1 lengthening)")
+    p.add_argument("--config", help="config whose plant.muscle gives the rest geometry and the first guess")
+    p.add_argument("--rest-length", help="rest length, e.g. '250 mm' (without --config)")
+    p.add_argument("--rest-radius", help="rest braid radius, e.g. '8 mm' (without --config)")
+    p.add_argument("--braid-angle", default="20 deg", help="first guess of the rest braid angle (without --config)")
+    p.add_argument("--out", help="output folder (default: a new folder under runs/)")
+    p.add_argument("--json", action="store_true", help="print the report as JSON")
+    p.set_defaults(func=cmd_calibrate)
     return parser
 
 
