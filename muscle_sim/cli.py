@@ -403,6 +403,74 @@ def cmd_calibrate(args) -> int:
     return 0
 
 
+def cmd_plan(args) -> int:
+    """Plan the strike offline on the prior model."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    from controllers.planning import plan
+    from .records import save_figure_atomic, write_json_atomic, write_text_atomic
+    from .simulation import Setup
+
+    setup = Setup.from_config(args.config)
+    rate = None
+    if args.max_pressure_rate:
+        try:
+            rate = to_si(args.max_pressure_rate, "pressure_rate")
+        except UnitError as exc:
+            raise BadInput(f"--max-pressure-rate: {exc}") from None
+        if rate <= 0:
+            raise BadInput(f"--max-pressure-rate: {args.max_pressure_rate!r} is not allowed; must be > 0")
+    if args.iterations < 1:
+        raise BadInput(f"--iterations: {args.iterations} is not allowed; must be >= 1")
+    out = _out_dir(args, "plan")
+    result = plan(setup, args.minimise, rate, args.iterations)
+    task = setup.task
+    t = np.arange(task.n_steps + 1) * task.dt
+    result.profile.write_csv(out / "profile.csv")
+    lines = ["# planned swing of the prior model", "time [s],reference [deg]"]
+    lines += [f"{a:.9g},{math.degrees(q):.9g}" for a, q in zip(t, result.swing)]
+    write_text_atomic(out / "reference.csv", "\n".join(lines) + "\n")
+    fig, (ax1, ax2) = plt.subplots(2, 1, figsize=(7, 6), sharex=True, layout="constrained")
+    from .tasks import reference
+
+    ax1.plot(t, np.degrees(reference(task, t)[0]), color="0.6", lw=2, label="task reference")
+    ax1.plot(t, np.degrees(result.swing), label="planned swing (prior)")
+    ax1.plot([task.strike_time], [math.degrees(task.strike_angle)], "kx", label="strike")
+    ax1.set_ylabel("angle [deg]")
+    ax1.legend(fontsize="small")
+    ax2.step(result.profile.t, result.profile.commands / 1e5, where="post")
+    ax2.set_ylabel("command [bar]")
+    ax2.set_xlabel("time [s]")
+    save_figure_atomic(fig, out / "plan.png")
+    plt.close(fig)
+    report = {"feasible": result.feasible, "success": result.success, "status": result.status,
+              "message": result.message, "objective": result.objective, "objective_value": result.objective_value,
+              "strike_angle_deg": math.degrees(result.strike_angle), "strike_speed_rad_s": result.strike_speed,
+              "active_limits": result.active_limits, "max_strike_speed_rad_s": result.max_strike_speed,
+              "suggestions": result.suggestions, "profile": str(out / "profile.csv"),
+              "safety": safety.GENERAL + " " + safety.HARDWARE}
+    write_json_atomic(out / "plan.json", report)
+    if args.json:
+        from .records import json_safe
+
+        print(json.dumps(json_safe(report), indent=2))
+        return 0
+    print(f"plan of {setup.config.source} on the prior model, minimising {result.objective}: {result.message}")
+    print(f"  strike {math.degrees(result.strike_angle):.3f} deg at {task.strike_time * 1e3:g} ms with "
+          f"{result.strike_speed:.3f} rad/s (wanted {math.degrees(task.strike_angle):g} deg, {task.strike_speed:g} rad/s)")
+    print(f"  {result.objective}: {result.objective_value:.4g} bar")
+    for line in result.active_limits or ["none"]:
+        print(f"  active limit: {line}")
+    for line in result.suggestions:
+        print(f"  would help: {line}")
+    print(f"wrote {out}/profile.csv, reference.csv, plan.json, plan.png (start tuning with --start {out}/profile.csv)")
+    print(safety.HARDWARE)
+    return 0
+
+
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser of all sub-commands."""
     parser = _Parser(prog="pamjoint", description="Antagonistic McKibben muscle joints: sizing, "
@@ -478,6 +546,16 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", help="output folder (default: a new folder under runs/)")
     p.add_argument("--json", action="store_true", help="print the report as JSON")
     p.set_defaults(func=cmd_calibrate)
+
+    p = sub.add_parser("plan", help="plan the strike offline on the prior model under limits")
+    p.add_argument("config", help="YAML config")
+    p.add_argument("--minimise", choices=("peak-pressure", "mean-pressure"), default="peak-pressure",
+                   help="cost to minimise (default peak-pressure)")
+    p.add_argument("--max-pressure-rate", help="limit of the command rate, e.g. '100 bar/s' (default none)")
+    p.add_argument("--iterations", type=int, default=150, help="optimiser iterations (default 150)")
+    p.add_argument("--out", help="output folder (default: a new folder under runs/)")
+    p.add_argument("--json", action="store_true", help="print the report as JSON")
+    p.set_defaults(func=cmd_plan)
     return parser
 
 
