@@ -8,7 +8,7 @@ from collections import deque
 import numpy as np
 
 from .errors import ParameterError, SimulationDiverged
-from .plant import N_STATE, clamp_pressures, rhs, rhs_f
+from .plant import N_STATE, clamp_pressures, rhs, scalar_kernel
 from .params import PlantParams
 
 #: Angle and rate magnitudes past which a state counts as diverged [rad], [rad/s].
@@ -40,13 +40,22 @@ def rk4_step(t, x, u, h, params):
 
 
 def rk4_step_f(t, x, u, h, params):
-    """One RK4 step of :func:`muscle_sim.plant.rhs_f` on Python floats."""
-    k1 = rhs_f(t, x, u, params)
-    k2 = rhs_f(t + 0.5 * h, [a + 0.5 * h * b for a, b in zip(x, k1)], u, params)
-    k3 = rhs_f(t + 0.5 * h, [a + 0.5 * h * b for a, b in zip(x, k2)], u, params)
-    k4 = rhs_f(t + h, [a + h * b for a, b in zip(x, k3)], u, params)
+    """One RK4 step on Python floats with the bound scalar kernel (:func:`plant.scalar_kernel`)."""
+    return _rk4_kernel_step(scalar_kernel(params), x, u, h)
+
+
+def _rk4_kernel_step(f, x, u, h):
+    ua, ub = u
+    x0, x1, x2, x3, x4, x5 = x
+    hh = 0.5 * h
+    a0, a1, a2, a3, a4, a5 = f(x0, x1, x2, x3, x4, x5, ua, ub)
+    b0, b1, b2, b3, b4, b5 = f(x0 + hh * a0, x1 + hh * a1, x2 + hh * a2, x3 + hh * a3, x4 + hh * a4, x5 + hh * a5, ua, ub)
+    c0, c1, c2, c3, c4, c5 = f(x0 + hh * b0, x1 + hh * b1, x2 + hh * b2, x3 + hh * b3, x4 + hh * b4, x5 + hh * b5, ua, ub)
+    d0, d1, d2, d3, d4, d5 = f(x0 + h * c0, x1 + h * c1, x2 + h * c2, x3 + h * c3, x4 + h * c4, x5 + h * c5, ua, ub)
     h6 = h / 6.0
-    return [a + h6 * (b1 + 2.0 * (b2 + b3) + b4) for a, b1, b2, b3, b4 in zip(x, k1, k2, k3, k4)]
+    return [x0 + h6 * (a0 + 2.0 * (b0 + c0) + d0), x1 + h6 * (a1 + 2.0 * (b1 + c1) + d1),
+            x2 + h6 * (a2 + 2.0 * (b2 + c2) + d2), x3 + h6 * (a3 + 2.0 * (b3 + c3) + d3),
+            x4 + h6 * (a4 + 2.0 * (b4 + c4) + d4), x5 + h6 * (a5 + 2.0 * (b5 + c5) + d5)]
 
 
 def _diverged(x) -> bool:
@@ -68,6 +77,7 @@ class Stepper:
         self.n_substeps = check_substeps(control_dt, n_substeps)
         self.h = self.control_dt / self.n_substeps
         self.batch = batch
+        self._kernel = scalar_kernel(params) if batch is None else None
         self.n_delay = delay_substeps(params, control_dt, self.n_substeps)
         self._history: deque = deque()
         self.reset(np.zeros(N_STATE) if batch is None else np.zeros((batch, N_STATE)))
@@ -113,7 +123,7 @@ class Stepper:
         for j in range(self.n_substeps):
             uj = self._command_for(j)
             if self.batch is None:
-                x = rk4_step_f(t, x, uj, h, p)
+                x = _rk4_kernel_step(self._kernel, x, uj, h)
                 x[2] = min(max(x[2], 0.0), supply)
                 x[3] = min(max(x[3], 0.0), supply)
             else:

@@ -2,11 +2,9 @@
 
 Muscle A shortens as the angle grows: ``L_a = L_0 - r_p q``, ``L_b = L_0 + r_p q`` with
 ``L_0 = l0 (1 - eps0)`` (both pre-contracted by ``eps0``), so ``tau = r_p (F_a - F_b)``.
-Pure functions over numpy arrays; ``*_f`` twins on Python floats serve the scalar fast path.
+Pure functions over numpy arrays (the scalar fast path inlines them in ``plant.scalar_kernel``).
 """
 from __future__ import annotations
-
-import math
 
 import numpy as np
 
@@ -37,20 +35,3 @@ def passive_torque(joint: JointParams, angle, rate):
     friction = joint.viscous_damping * rate + joint.coulomb_torque * np.tanh(rate / joint.coulomb_rate_scale)
     gravity = joint.gravity_moment * np.sin(np.asarray(angle, dtype=float) + joint.gravity_offset)
     return -friction - gravity
-
-
-def stop_torque_f(joint: JointParams, q: float, qd: float) -> float:
-    """Python-float twin of :func:`stop_torque`."""
-    if q > joint.upper_stop:
-        d = q - joint.upper_stop
-        return min(-joint.stop_stiffness * d - joint.stop_damping * d * qd, 0.0)
-    if q < joint.lower_stop:
-        d = joint.lower_stop - q
-        return max(joint.stop_stiffness * d - joint.stop_damping * d * qd, 0.0)
-    return 0.0
-
-
-def passive_torque_f(joint: JointParams, q: float, qd: float) -> float:
-    """Python-float twin of :func:`passive_torque`."""
-    return (-joint.viscous_damping * qd - joint.coulomb_torque * math.tanh(qd / joint.coulomb_rate_scale)
-            - joint.gravity_moment * math.sin(q + joint.gravity_offset))

@@ -170,26 +170,3 @@ def chamber_terms(params: McKibbenParams, pressure, contraction, contraction_rat
     pull = p_net * area - braid_friction_force(params, pressure, contraction_rate)
     return np.where(area > 0.0, np.maximum(pull, 0.0), 0.0), area, _volume_at_cos(params, c)
 
-
-def chamber_terms_f(params: McKibbenParams, pressure: float, contraction: float,
-                    contraction_rate: float) -> tuple[float, float, float]:
-    """Python-float twin of :func:`chamber_terms` for the scalar fast path (same equations)."""
-    eps_max = max_contraction(params)
-    eps = min(max(contraction, 0.0), eps_max)
-    c = (1.0 - params.end_correction * eps) * math.cos(params.rest_braid_angle)
-    s = math.sqrt(1.0 - c * c)
-    d0, t = params.neutral_diameter, params.wall_thickness
-    d_inner = d0 * s - 2.0 * t
-    vol = 0.25 * math.pi * d_inner * d_inner * params.rest_length * c / (
-        math.cos(params.rest_braid_angle) * params.end_correction)
-    if contraction < 0.0 or contraction > eps_max:
-        return 0.0, 0.0, vol
-    area = 0.25 * math.pi * d0 * d0 * (3.0 * c * c - 1.0)
-    if t > 0.0:
-        area += math.pi * (d0 * t * (2.0 * s - 1.0 / s) - t * t)
-    if area <= 0.0:
-        return 0.0, 0.0, vol
-    p_net = max(pressure - params.threshold_pressure, 0.0)
-    friction = (params.braid_friction * math.pi * params.rest_radius ** 2 * p_net
-                * math.tanh(contraction_rate / params.friction_rate_scale))
-    return max(p_net * area - friction, 0.0), area, vol

@@ -7,6 +7,7 @@ axis with numpy; :func:`rhs_f` is its Python-float twin for the single environme
 """
 from __future__ import annotations
 
+import functools
 import math
 
 import numpy as np
@@ -37,11 +38,13 @@ def _pressure_rates(params: PlantParams, p, s, u, vol, vol_rate):
     target = np.clip(pn.valve_gain * (u - p) / _BAR, -1.0, 1.0)
     ds = (target - s) / pn.valve_time_constant
     p_abs = p + pn.atmosphere
-    fill = iso6358_mass_flow(pn.sonic_conductance * np.maximum(s, 0.0), pn.critical_ratio,
-                             pn.supply_pressure + pn.atmosphere, p_abs, pn.temperature, pn.subsonic_index)
-    vent = iso6358_mass_flow(pn.sonic_conductance * np.maximum(-s, 0.0), pn.critical_ratio,
-                             p_abs, pn.atmosphere, pn.temperature, pn.subsonic_index)
-    dp = chamber_pressure_rate(p, vol, vol_rate, fill - vent, pn.temperature, pn.atmosphere,
+    # the spool connects the chamber to supply (s > 0) or to exhaust (s < 0), never both
+    filling = s > 0.0
+    upstream = np.where(filling, pn.supply_pressure + pn.atmosphere, p_abs)
+    downstream = np.where(filling, p_abs, pn.atmosphere)
+    flow = iso6358_mass_flow(pn.sonic_conductance * np.abs(s), pn.critical_ratio, upstream, downstream,
+                             pn.temperature, pn.subsonic_index)
+    dp = chamber_pressure_rate(p, vol, vol_rate, np.where(filling, flow, -flow), pn.temperature, pn.atmosphere,
                                pn.k_in, pn.k_out, pn.k_chamber)
     return dp, ds
 
@@ -81,41 +84,10 @@ def rhs(t, x, u, params: PlantParams):
     return out
 
 
-def _pressure_rates_f(params: PlantParams, p: float, s: float, u: float, vol: float, vol_rate: float):
-    pn = params.pneumatics
-    if pn.model == "lag":
-        target = min(max(u, 0.0), pn.supply_pressure)
-        dp = (target - p) / pn.lag_time_constant
-        return min(max(dp, -pn.max_pressure_rate), pn.max_pressure_rate), 0.0
-    target = min(max(pn.valve_gain * (u - p) / _BAR, -1.0), 1.0)
-    ds = (target - s) / pn.valve_time_constant
-    p_abs = p + pn.atmosphere
-    mdot = 0.0
-    if s > 0.0:
-        mdot = iso6358_mass_flow_f(pn.sonic_conductance * s, pn.critical_ratio, pn.supply_pressure + pn.atmosphere,
-                                   p_abs, pn.temperature, pn.subsonic_index)
-    elif s < 0.0:
-        mdot = -iso6358_mass_flow_f(-pn.sonic_conductance * s, pn.critical_ratio, p_abs, pn.atmosphere,
-                                    pn.temperature, pn.subsonic_index)
-    weighted = pn.k_in * mdot if mdot >= 0.0 else pn.k_out * mdot
-    dp = (R_AIR * pn.temperature * weighted - pn.k_chamber * p_abs * vol_rate) / vol
-    return dp, ds
-
-
 def rhs_f(t: float, x, u, params: PlantParams) -> list:
-    """Python-float twin of :func:`rhs` for one state (a sequence of 6 floats)."""
-    m, j = params.muscle, params.joint
-    q, qd, pa, pb, sa, sb = x
-    shift = j.pulley_radius * q / m.rest_length
-    eps_rate = j.pulley_radius * qd / m.rest_length
-    fa, area_a, vol_a = _muscle.chamber_terms_f(m, pa, j.pre_contraction + shift, eps_rate)
-    fb, area_b, vol_b = _muscle.chamber_terms_f(m, pb, j.pre_contraction - shift, -eps_rate)
-    torque = j.pulley_radius * (fa - fb) + _joint.passive_torque_f(j, q, qd) + _joint.stop_torque_f(j, q, qd)
-    dead = params.pneumatics.dead_volume
-    v_rate = j.pulley_radius * qd
-    dpa, dsa = _pressure_rates_f(params, pa, sa, u[0], vol_a + dead, area_a * v_rate)
-    dpb, dsb = _pressure_rates_f(params, pb, sb, u[1], vol_b + dead, -area_b * v_rate)
-    return [qd, torque / j.total_inertia, dpa, dpb, dsa, dsb]
+    """Python-float twin of :func:`rhs` for one state (a sequence of 6 floats), through
+    :func:`scalar_kernel`."""
+    return list(scalar_kernel(params)(*x, u[0], u[1]))
 
 
 def clamp_pressures(params: PlantParams, x):
@@ -161,3 +133,97 @@ def holding_pressures(params: PlantParams, angle: float, base_pressure: float):
         f_a = base_net * area_a
         return base_pressure, thr + max(f_a - load, 0.0) / area_b
     return p_a, base_pressure
+
+
+@functools.lru_cache(maxsize=64)
+def scalar_kernel(params: PlantParams):
+    """The scalar right-hand side with every constant of ``params`` bound once: a function
+    ``f(q, qd, pa, pb, sa, sb, ua, ub) -> 6-tuple``. Same equations as :func:`rhs` (muscle
+    :func:`~muscle_sim.muscle.chamber_terms`, joint torques, ISO 6358 valves, chamber), inlined for
+    the single environment's speed; ``tests/test_scalar_path.py`` holds the two together."""
+    m, j, pn = params.muscle, params.joint, params.pneumatics
+    eps_max = _muscle.max_contraction(m)
+    k_end, cos0 = m.end_correction, math.cos(m.rest_braid_angle)
+    d0, wall = m.neutral_diameter, m.wall_thickness
+    vol_scale = 0.25 * math.pi * m.rest_length / (cos0 * k_end)
+    area_ideal = 0.25 * math.pi * d0 * d0
+    wall_a, wall_b = math.pi * d0 * wall, math.pi * wall * wall
+    thr = m.threshold_pressure
+    fric_scale, fric_rate = m.braid_friction * math.pi * m.rest_radius ** 2, m.friction_rate_scale
+    rp, l0, eps0 = j.pulley_radius, m.rest_length, j.pre_contraction
+    inv_j = 1.0 / j.total_inertia
+    visc, coul, coul_rate, grav, grav_off = (j.viscous_damping, j.coulomb_torque, j.coulomb_rate_scale,
+                                             j.gravity_moment, j.gravity_offset)
+    lo_stop, hi_stop, k_stop, c_stop = j.lower_stop, j.upper_stop, j.stop_stiffness, j.stop_damping
+    dead = pn.dead_volume
+    lag = pn.model == "lag"
+    supply, atm, tau_lag, max_rate = pn.supply_pressure, pn.atmosphere, pn.lag_time_constant, pn.max_pressure_rate
+    gain, tau_v = pn.valve_gain / _BAR, pn.valve_time_constant
+    supply_abs = supply + atm
+    C, b, m_sub, temp = pn.sonic_conductance, pn.critical_ratio, pn.subsonic_index, pn.temperature
+    rt = R_AIR * temp
+    k_in, k_out, k_ch = pn.k_in, pn.k_out, pn.k_chamber
+    sqrt, tanh, sin = math.sqrt, math.tanh, math.sin
+    tan_fric = bool(fric_scale)
+    has_grav, has_coul = bool(grav), bool(coul)
+
+    def muscle(p, eps, rate):
+        e = eps_max if eps > eps_max else (0.0 if eps < 0.0 else eps)
+        c = (1.0 - k_end * e) * cos0
+        s = sqrt(1.0 - c * c)
+        di = d0 * s - 2.0 * wall
+        vol = vol_scale * di * di * c
+        if eps < 0.0 or eps > eps_max:
+            return 0.0, 0.0, vol
+        area = area_ideal * (3.0 * c * c - 1.0)
+        if wall > 0.0:
+            area += wall_a * (2.0 * s - 1.0 / s) - wall_b
+        if area <= 0.0:
+            return 0.0, 0.0, vol
+        pn_ = p - thr if p > thr else 0.0
+        f = pn_ * area
+        if tan_fric:
+            f -= fric_scale * pn_ * tanh(rate / fric_rate)
+        return (f if f > 0.0 else 0.0), area, vol
+
+    def chamber(p, s, u, vol, vrate):
+        if lag:
+            target = 0.0 if u < 0.0 else (supply if u > supply else u)
+            dp = (target - p) / tau_lag
+            return (max_rate if dp > max_rate else (-max_rate if dp < -max_rate else dp)), 0.0
+        target = gain * (u - p)
+        target = 1.0 if target > 1.0 else (-1.0 if target < -1.0 else target)
+        ds = (target - s) / tau_v
+        p_abs = p + atm
+        mdot = 0.0
+        if s > 0.0:
+            mdot = iso6358_mass_flow_f(C * s, b, supply_abs, p_abs, temp, m_sub)
+        elif s < 0.0:
+            mdot = -iso6358_mass_flow_f(-C * s, b, p_abs, atm, temp, m_sub)
+        weighted = k_in * mdot if mdot >= 0.0 else k_out * mdot
+        return (rt * weighted - k_ch * p_abs * vrate) / vol, ds
+
+    def f(q, qd, pa, pb, sa, sb, ua, ub):
+        shift = rp * q / l0
+        rate = rp * qd / l0
+        fa, area_a, vol_a = muscle(pa, eps0 + shift, rate)
+        fb, area_b, vol_b = muscle(pb, eps0 - shift, -rate)
+        torque = rp * (fa - fb) - visc * qd
+        if has_coul:
+            torque -= coul * tanh(qd / coul_rate)
+        if has_grav:
+            torque -= grav * sin(q + grav_off)
+        if q > hi_stop:
+            d = q - hi_stop
+            tau = -k_stop * d - c_stop * d * qd
+            torque += tau if tau < 0.0 else 0.0
+        elif q < lo_stop:
+            d = lo_stop - q
+            tau = k_stop * d - c_stop * d * qd
+            torque += tau if tau > 0.0 else 0.0
+        vr = rp * qd
+        dpa, dsa = chamber(pa, sa, ua, vol_a + dead, area_a * vr)
+        dpb, dsb = chamber(pb, sb, ub, vol_b + dead, -area_b * vr)
+        return qd, torque * inv_j, dpa, dpb, dsa, dsb
+
+    return f

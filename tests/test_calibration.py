@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 
 from muscle_sim import cli
-from muscle_sim.calibration import BenchData, calibrate, model_force, read_bench_csv
+from muscle_sim.calibration import BenchData, calibrate, model_force
 from muscle_sim.params import McKibbenParams
 
 from conftest import DEMO, ROOT

@@ -6,7 +6,6 @@ import subprocess
 import sys
 import time
 
-import pytest
 
 from muscle_sim import cli
 

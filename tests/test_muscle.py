@@ -1,5 +1,6 @@
 """Checks of the McKibben static model against the published equations and identities."""
 import math
+from dataclasses import replace
 
 import numpy as np
 import pytest
@@ -212,6 +213,12 @@ def test_broadcasting_matches_scalar_calls(p, pressures, contractions):
 def test_force_rises_with_pressure_and_falls_with_contraction(p, pressure, u1, u2):
     eps_max = muscle.max_contraction(p)
     e1, e2 = sorted((u1 * eps_max, u2 * eps_max))
-    assert muscle.static_force(p, pressure, e1) >= muscle.static_force(p, pressure, e2)
     assert muscle.static_force(p, pressure * 1.1, e1) >= muscle.static_force(p, pressure, e1)
     assert muscle.static_force(p, pressure, e1) >= 0.0
+    # Falling with contraction is a property of the ideal law (derived: dF/deps = -6 pi r0^2 P a
+    # (1 - k eps) k < 0). The Chou-Hannaford wall term pi P D0 t (2 sin - 1/sin) grows with the braid
+    # angle, so a thick wall at a small braid angle can raise the force at first (hypothesis found
+    # t = 0.14 r0 at 10 deg); the check therefore uses the same muscle without its wall.
+    bare = replace(p, wall_thickness=0.0)
+    assert muscle.static_force(bare, pressure, e1 * muscle.max_contraction(bare) / eps_max) >= \
+        muscle.static_force(bare, pressure, e2 * muscle.max_contraction(bare) / eps_max)
