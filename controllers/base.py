@@ -9,7 +9,7 @@ from typing import Protocol
 import numpy as np
 
 from muscle_sim.errors import DataError
-from muscle_sim.records import write_text_atomic
+from muscle_sim.records import read_unit_table, write_text_atomic
 
 PROFILE_COLUMNS = ("time [s]", "command_a [kPa]", "command_b [kPa]")
 
@@ -73,46 +73,23 @@ class PressureProfile:
 
     @classmethod
     def read_csv(cls, path) -> "PressureProfile":
-        """Read a profile CSV; a bad file gives a one-line DataError naming row and column."""
-        try:
-            lines = Path(path).read_text(encoding="utf-8").splitlines()
-        except OSError as exc:
-            raise DataError(f"profile: cannot read {str(path)!r}: {exc.strerror or exc}") from None
-        meta = {}
-        if lines and lines[0].startswith("#"):
-            try:
-                meta = json.loads(lines[0][1:].strip() or "{}")
-            except json.JSONDecodeError:
-                meta = {}
-            lines = lines[1:]
-        if not lines:
-            raise DataError(f"{path}: empty; must have the header {', '.join(PROFILE_COLUMNS)}")
-        header = tuple(h.strip() for h in lines[0].split(","))
-        if header != PROFILE_COLUMNS:
-            raise DataError(f"{path}: header {', '.join(header)} is not allowed; must be "
+        """Read a profile CSV (``time [s|ms]``, ``command_a``/``command_b`` in ``kPa|bar|Pa``);
+        a bad file gives a one-line DataError naming row and column."""
+        pressure = {"kPa": 1e3, "bar": 1e5, "Pa": 1.0}
+        table = read_unit_table(path, {"time": {"s": 1.0, "ms": 1e-3}, "command_a": pressure,
+                                       "command_b": pressure}, "profile")
+        if len(table.columns) != 3:
+            raise DataError(f"{path}: columns {', '.join(table.headers)} are not allowed; must be "
                             f"{', '.join(PROFILE_COLUMNS)}")
-        rows = []
-        for i, line in enumerate(lines[1:], start=2):
-            cells = [c.strip() for c in line.split(",")]
-            if len(cells) != 3:
-                raise DataError(f"{path}: row {i} has {len(cells)} cells; must have 3")
-            values = []
-            for name, cell in zip(PROFILE_COLUMNS, cells):
-                try:
-                    v = float(cell)
-                except ValueError:
-                    raise DataError(f"{path}: row {i}, column '{name}': {cell!r} is not a number") from None
-                if not np.isfinite(v):
-                    raise DataError(f"{path}: row {i}, column '{name}': {cell!r} is not allowed; must be finite")
-                if name != "time [s]" and v < 0:
-                    raise DataError(f"{path}: row {i}, column '{name}': {v:g} kPa is not allowed; gauge "
-                                    f"commands must be >= 0")
-                values.append(v)
-            rows.append(values)
-        if not rows:
+        if table.data.shape[0] == 0:
             raise DataError(f"{path}: no data rows")
-        data = np.array(rows)
-        if np.any(np.diff(data[:, 0]) <= 0):
-            i = int(np.nonzero(np.diff(data[:, 0]) <= 0)[0][0]) + 3
-            raise DataError(f"{path}: row {i}, column 'time [s]': time must increase")
-        return cls(t=data[:, 0], commands=data[:, 1:] * 1e3, metadata=meta)
+        for name in ("command_a", "command_b"):
+            bad = np.nonzero(table.si(name) < 0)[0]
+            if bad.size:
+                table.fail(name, int(bad[0]), "gauge commands must be >= 0")
+        t = table.si("time")
+        back = np.nonzero(np.diff(t) <= 0)[0]
+        if back.size:
+            table.fail("time", int(back[0]) + 1, "time must increase")
+        return cls(t=t, commands=np.column_stack([table.si("command_a"), table.si("command_b")]),
+                   metadata=table.meta)

@@ -10,7 +10,6 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, replace
-from pathlib import Path
 
 import numpy as np
 
@@ -41,48 +40,17 @@ class BenchData:
 def read_bench_csv(path, rest_length: float) -> BenchData:
     """Read bench data: columns ``pressure [unit]``, ``length [unit]`` or ``contraction [unit]``,
     ``force [unit]``, optional ``direction [-]``; one-line DataError naming row and column."""
-    try:
-        lines = [ln for ln in Path(path).read_text(encoding="utf-8").splitlines() if not ln.startswith("#")]
-    except OSError as exc:
-        raise DataError(f"bench data: cannot read {str(path)!r}: {exc.strerror or exc}") from None
-    if not lines:
-        raise DataError(f"{path}: empty")
-    header = [h.strip() for h in lines[0].split(",")]
-    cols = {}
-    for i, cell in enumerate(header):
-        if "[" not in cell or not cell.endswith("]"):
-            raise DataError(f"{path}: column {i + 1} {cell!r} is not allowed; write 'name [unit]', e.g. 'force [N]'")
-        name, unit = (s.strip() for s in cell[:-1].split("[", 1))
-        if name not in BENCH_UNITS:
-            raise DataError(f"{path}: column {cell!r} is unknown; allowed: pressure, length or contraction, force, direction")
-        if unit not in BENCH_UNITS[name]:
-            raise DataError(f"{path}: column {cell!r}: unit '{unit}' does not match; must be one of "
-                            f"{', '.join(BENCH_UNITS[name])}")
-        cols[name] = (i, BENCH_UNITS[name][unit])
+    from .records import read_unit_table
+
+    table = read_unit_table(path, BENCH_UNITS, "bench data")
+    cols = table.columns
     if "pressure" not in cols or "force" not in cols or ("length" not in cols) == ("contraction" not in cols):
         raise DataError(f"{path}: columns must be pressure, force and exactly one of length or contraction")
-    rows = []
-    for r, line in enumerate(lines[1:], start=2):
-        cells = line.split(",")
-        if len(cells) != len(header):
-            raise DataError(f"{path}: row {r} has {len(cells)} cells; must have {len(header)}")
-        vals = []
-        for c, cell in enumerate(cells):
-            try:
-                v = float(cell)
-            except ValueError:
-                raise DataError(f"{path}: row {r}, column {header[c]!r}: {cell.strip()!r} is not a number") from None
-            if not math.isfinite(v):
-                raise DataError(f"{path}: row {r}, column {header[c]!r}: {cell.strip()!r} is not allowed; must be finite")
-            vals.append(v)
-        rows.append(vals)
-    if len(rows) < 5:
-        raise DataError(f"{path}: {len(rows)} data rows; a fit needs at least 5")
-    data = np.array(rows)
-    get = lambda n: data[:, cols[n][0]] * cols[n][1]  # noqa: E731
-    pressure, force = get("pressure"), get("force")
-    eps = get("contraction") if "contraction" in cols else (rest_length - get("length")) / rest_length
-    direction = get("direction") if "direction" in cols else np.zeros(len(rows))
+    if table.data.shape[0] < 5:
+        raise DataError(f"{path}: {table.data.shape[0]} data rows; a fit needs at least 5")
+    pressure, force = table.si("pressure"), table.si("force")
+    eps = table.si("contraction") if "contraction" in cols else (rest_length - table.si("length")) / rest_length
+    direction = table.si("direction") if "direction" in cols else np.zeros(table.data.shape[0])
     checks = [("pressure", pressure < 0, "gauge pressure must be >= 0"),
               ("force", force < 0, "a muscle only pulls: force must be >= 0"),
               ("length" if "length" in cols else "contraction", (eps < -0.5) | (eps >= 1.0),
@@ -90,9 +58,7 @@ def read_bench_csv(path, rest_length: float) -> BenchData:
               ("direction", ~np.isin(direction, (-1.0, 0.0, 1.0)), "direction must be -1, 0 or 1")]
     for name, bad, why in checks:
         if name in cols and bad.any():
-            r = int(np.nonzero(bad)[0][0])
-            raise DataError(f"{path}: row {r + 2}, column {header[cols[name][0]]!r}: "
-                            f"{data[r, cols[name][0]]:g} is not allowed; {why}")
+            table.fail(name, int(np.nonzero(bad)[0][0]), why)
     return BenchData(pressure, eps, force, direction)
 
 

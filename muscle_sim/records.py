@@ -132,27 +132,90 @@ class Rollout:
     @classmethod
     def read_csv(cls, path) -> "Rollout":
         """Read a rollout CSV written by :meth:`write_csv` (errors name the row and column)."""
-        text = Path(path).read_text(encoding="utf-8").splitlines()
-        meta = {}
-        if text and text[0].startswith("#"):
-            meta = json.loads(text[0][1:].strip() or "{}")
-            text = text[1:]
-        header = [h.strip() for h in text[0].split(",")]
-        expected = [name for name, _ in ROLLOUT_COLUMNS]
-        if header != expected:
-            raise DataError(f"{path}: header {header} is not allowed; must be {expected}")
-        rows = []
-        for i, line in enumerate(text[1:], start=2):
-            cells = line.split(",")
-            if len(cells) != len(expected):
-                raise DataError(f"{path}: row {i} has {len(cells)} cells; must have {len(expected)}")
-            try:
-                rows.append([float(c) for c in cells])
-            except ValueError:
-                raise DataError(f"{path}: row {i} holds a value that is not a number") from None
-        data = _np.array(rows)
-        si = data / _np.array([f for _, f in ROLLOUT_COLUMNS])
+        allowed = {name.split(" [")[0]: {name.split("[")[1][:-1]: 1.0 / f} for name, f in ROLLOUT_COLUMNS}
+        table = read_unit_table(path, allowed, "rollout")
+        if len(table.columns) != len(ROLLOUT_COLUMNS):
+            raise DataError(f"{path}: columns {', '.join(table.headers)} are not allowed; must be "
+                            f"{', '.join(n for n, _ in ROLLOUT_COLUMNS)}")
+        si = _np.column_stack([table.si(name) for name in allowed])
+        meta = table.meta
         return cls(t=si[:, 0], measured=si[:, 1:5], command=si[:, 5:7], reference=si[:, 7], metadata=meta)
+
+
+@dataclass
+class UnitTable:
+    """A CSV table whose header cells read ``name [unit]``: raw values, column index, unit factors.
+
+    Row numbers in messages count the header as row 1 (comment lines starting with '#' aside)."""
+
+    path: str
+    meta: dict
+    headers: list
+    columns: dict           # name -> (index, factor to SI)
+    data: "_np.ndarray"     # raw values as written, (rows, columns)
+
+    def si(self, name: str) -> "_np.ndarray":
+        """Column ``name`` in SI units."""
+        i, factor = self.columns[name]
+        return self.data[:, i] * factor
+
+    def fail(self, name: str, row: int, why: str):
+        """Raise a one-line DataError for the value in data row ``row`` (0-based) of column ``name``."""
+        i = self.columns[name][0]
+        raise DataError(f"{self.path}: row {row + 2}, column {self.headers[i]!r}: {self.data[row, i]:g} is not "
+                        f"allowed; {why}")
+
+
+def read_unit_table(path, allowed: dict, what: str = "table") -> UnitTable:
+    """Read a CSV with ``name [unit]`` headers; ``allowed`` maps each column name to its units
+    (unit -> factor to SI). A first ``# {json}`` line is metadata; other '#' lines are comments.
+    Unknown columns or units, short rows, non-numbers and non-finite values are one-line
+    DataErrors naming the row and column."""
+    try:
+        lines = Path(path).read_text(encoding="utf-8").splitlines()
+    except OSError as exc:
+        raise DataError(f"{what}: cannot read {str(path)!r}: {exc.strerror or exc}") from None
+    meta = {}
+    if lines and lines[0].startswith("#"):
+        try:
+            meta = json.loads(lines[0][1:].strip() or "{}")
+        except json.JSONDecodeError:
+            meta = {}
+    lines = [ln for ln in lines if not ln.startswith("#")]
+    if not lines:
+        raise DataError(f"{path}: empty {what}")
+    headers = [h.strip() for h in lines[0].split(",")]
+    columns = {}
+    for i, cell in enumerate(headers):
+        if "[" not in cell or not cell.endswith("]"):
+            raise DataError(f"{path}: column {i + 1} {cell!r} is not allowed; write 'name [unit]', e.g. 'angle [deg]'")
+        name, unit = (x.strip() for x in cell[:-1].split("[", 1))
+        if name not in allowed:
+            raise DataError(f"{path}: column {cell!r} is unknown; allowed: {', '.join(allowed)}")
+        if unit not in allowed[name]:
+            raise DataError(f"{path}: column {cell!r}: unit '{unit}' does not match; must be one of "
+                            f"{', '.join(allowed[name])}")
+        if name in columns:
+            raise DataError(f"{path}: column {name!r} appears twice")
+        columns[name] = (i, allowed[name][unit])
+    rows = []
+    for r, line in enumerate(lines[1:], start=2):
+        cells = line.split(",")
+        if len(cells) != len(headers):
+            raise DataError(f"{path}: row {r} has {len(cells)} cells; must have {len(headers)}")
+        row = []
+        for c, cell in enumerate(cells):
+            try:
+                v = float(cell)
+            except ValueError:
+                raise DataError(f"{path}: row {r}, column {headers[c]!r}: {cell.strip()!r} is not a number") from None
+            if not _math.isfinite(v):
+                raise DataError(f"{path}: row {r}, column {headers[c]!r}: {cell.strip()!r} is not allowed; must be finite")
+            row.append(v)
+        rows.append(row)
+    data = _np.array(rows, dtype=float).reshape(len(rows), len(headers))
+    return UnitTable(str(path), meta, headers, columns, data)
+
 
 
 #: Trial-log columns a rig may give: name -> (allowed units with their factor to SI, required).
@@ -168,28 +231,6 @@ LOG_COLUMNS = {
 }
 
 
-def _parse_header(path, header):
-    out = {}
-    for i, cell in enumerate(header):
-        cell = cell.strip()
-        if "[" not in cell or not cell.endswith("]"):
-            raise DataError(f"{path}: column {i + 1} {cell!r} is not allowed; write 'name [unit]', e.g. 'angle [deg]'")
-        name, unit = cell[:-1].split("[", 1)
-        name, unit = name.strip(), unit.strip()
-        if name not in LOG_COLUMNS:
-            raise DataError(f"{path}: column {cell!r} is unknown; allowed: {', '.join(LOG_COLUMNS)}")
-        units = LOG_COLUMNS[name][0]
-        if unit not in units:
-            raise DataError(f"{path}: column {cell!r}: unit '{unit}' is not allowed; must be one of {', '.join(units)}")
-        if name in out:
-            raise DataError(f"{path}: column {name!r} appears twice")
-        out[name] = (i, units[unit])
-    missing = [n for n, (_, req) in LOG_COLUMNS.items() if req and n not in out]
-    if missing:
-        raise DataError(f"{path}: missing column(s) {', '.join(missing)}; required: time, angle, command_a, command_b")
-    return out
-
-
 def read_log(path, task, resample: bool = False, allow_short: bool = False) -> "Rollout":
     """Read a trial log (simulator rollout or rig CSV) for the learner, checked against the task.
 
@@ -201,45 +242,13 @@ def read_log(path, task, resample: bool = False, allow_short: bool = False) -> "
     ``allow_short=True`` accepts a trial that was stopped early (a prefix of the grid).
     Errors are one line naming the row and column.
     """
-    try:
-        lines = Path(path).read_text(encoding="utf-8").splitlines()
-    except OSError as exc:
-        raise DataError(f"log: cannot read {str(path)!r}: {exc.strerror or exc}") from None
-    meta = {}
-    if lines and lines[0].startswith("#"):
-        try:
-            meta = json.loads(lines[0][1:].strip() or "{}")
-        except json.JSONDecodeError:
-            meta = {}
-        lines = lines[1:]
-    if not lines:
-        raise DataError(f"{path}: empty log")
-    header = [h for h in lines[0].split(",")]
-    cols = _parse_header(path, header)
-    names = [c.strip() for c in header]
-    rows = []
-    for r, line in enumerate(lines[1:], start=2):
-        cells = line.split(",")
-        if len(cells) != len(header):
-            raise DataError(f"{path}: row {r} has {len(cells)} cells; must have {len(header)}")
-        row = []
-        for c, cell in enumerate(cells):
-            try:
-                v = float(cell)
-            except ValueError:
-                raise DataError(f"{path}: row {r}, column {names[c]!r}: {cell.strip()!r} is not a number") from None
-            if not _math.isfinite(v):
-                raise DataError(f"{path}: row {r}, column {names[c]!r}: {cell.strip()!r} is not allowed; must be finite")
-            row.append(v)
-        rows.append(row)
-    if len(rows) < 2:
-        raise DataError(f"{path}: {len(rows)} data row(s); a trial needs {task.n_steps + 1}")
-    data = _np.array(rows)
-
-    def col(name):
-        i, factor = cols[name]
-        return data[:, i] * factor
-
+    table = read_unit_table(path, {n: units for n, (units, _) in LOG_COLUMNS.items()}, "log")
+    missing = [n for n, (_, req) in LOG_COLUMNS.items() if req and n not in table.columns]
+    if missing:
+        raise DataError(f"{path}: missing column(s) {', '.join(missing)}; required: time, angle, command_a, command_b")
+    if table.data.shape[0] < 2:
+        raise DataError(f"{path}: {table.data.shape[0]} data row(s); a trial needs {task.n_steps + 1}")
+    cols, names, meta, col = table.columns, table.headers, table.meta, table.si
     t = col("time")
     dt = _np.diff(t)
     if _np.any(dt <= 0):
