@@ -172,29 +172,59 @@ class GradientLearner:
         du[:, 1, kn:] = self.phi[:n]
         return lin.forward(du)
 
-    def _constrain(self, step, g_angle, y):
-        """Muehlebach–Jordan velocity-level projection of ``step`` for the currently violated
-        angle limits; returns (step, number of active constraints)."""
-        lo_viol = np.nonzero(y < self.angle_low)[0]
-        hi_viol = np.nonzero(y > self.angle_high)[0]
-        if lo_viol.size + hi_viol.size == 0:
-            return step, 0
-        # g_i >= 0 form: g = y - low (lower), g = high - y (upper); grad g = +-G rows
-        M = np.vstack([g_angle[lo_viol], -g_angle[hi_viol]])
-        g = np.concatenate([y[lo_viol] - self.angle_low, self.angle_high - y[hi_viol]])
-        h = -CONSTRAINT_ALPHA * g                  # M v >= h
+    def _violated(self, g_angle, y):
+        """Rows ``M v >= h`` of the Muehlebach–Jordan velocity-level constraints for the angle
+        limits violated in the measured trial (``g_i >= 0`` form; every 4th sample is enough at the
+        knot spacing); ``None`` when nothing is violated."""
+        idx = np.arange(len(y))[:: 2]
+        lo = idx[y[idx] < self.angle_low]
+        hi = idx[y[idx] > self.angle_high]
+        if lo.size + hi.size == 0:
+            return None
+        M = np.vstack([g_angle[lo], -g_angle[hi]])
+        g = np.concatenate([y[lo] - self.angle_low, self.angle_high - y[hi]])
+        return M, -CONSTRAINT_ALPHA * g
+
+    def _solve_step(self, A, b, theta, limits):
+        """``argmin 1/2 d^T A d - b^T d`` with ``theta + d`` in the pressure box and the violated
+        angle constraints ``M d >= h``: a small box-constrained QP (SLSQP). Returns the step and
+        how many angle constraints bind."""
         from scipy.optimize import minimize
 
-        # dual of min 1/2 |v - step|^2 s.t. M v >= h: v = step + M^T mu, mu >= 0
-        MMt = M @ M.T
-        slack = M @ step - h
-
-        def dual(mu):
-            return 0.5 * mu @ MMt @ mu + mu @ slack, MMt @ mu + slack
-
-        res = minimize(dual, np.zeros(len(g)), jac=True, method="L-BFGS-B",
-                       bounds=[(0.0, None)] * len(g))
-        return step + M.T @ res.x, int(np.count_nonzero(res.x > 0))
+        sigma = 1e4                                   # optimise in units of 10 kPa
+        As = A * sigma * sigma
+        norm = max(float(np.trace(As)) / As.shape[0], 1e-300)
+        As, bs = As / norm, b * sigma / norm
+        lo, hi = (self.p_low - theta) / sigma, (self.p_high - theta) / sigma
+        z_free = np.linalg.solve(As, bs)
+        z0 = np.clip(z_free, lo, hi)
+        cons = []
+        if limits is not None:
+            M, h = limits
+            rows = np.linalg.norm(M * sigma, axis=1)
+            keep = rows > 1e-6 * rows.max() if rows.size and rows.max() > 0 else np.zeros(rows.size, bool)
+            # samples the profile cannot move (before the first command acts) carry no constraint
+            M, h, rows = M[keep], h[keep], rows[keep]
+            Ms, hs = M * sigma / rows[:, None], h / rows      # unit rows: [rad] -> O(1)
+            cons = [True] if keep.any() else []
+        elif np.all((z_free >= lo) & (z_free <= hi)):
+            return z_free * sigma, 0
+        bounds = list(zip(lo, hi))
+        z = z0
+        # quadratic penalty on the angle constraints, tightened three times (L-BFGS-B keeps the box);
+        # robust where an active-set QP meets this problem's scaling
+        for rho in ((1e2, 1e4, 1e6) if cons else (0.0,)):
+            def fun(z, rho=rho):
+                val, grad = 0.5 * z @ As @ z - bs @ z, As @ z - bs
+                if cons:
+                    short = np.minimum(Ms @ z - hs, 0.0)
+                    val, grad = val + 0.5 * rho * short @ short, grad + rho * (Ms.T @ short)
+                return val, grad
+            z = minimize(fun, z, jac=True, method="L-BFGS-B", bounds=bounds,
+                         options={"maxiter": 500, "ftol": 1e-15, "gtol": 1e-10}).x
+        z = np.clip(z, lo, hi)
+        binding = 0 if not cons else int(np.count_nonzero(Ms @ z - hs < 1e-4))
+        return z * sigma, binding
 
     # -- the update ----------------------------------------------------------------------------
     def update(self, rollout, profile: PressureProfile, state: LearnerState):
@@ -224,12 +254,13 @@ class GradientLearner:
                                              np.zeros((self.task.n_steps - lin.n_steps, 2))]))
         g_angle, g_rate = self._columns(lin)
         H = g_angle.T @ (W[:, None] * g_angle) + w_rate * np.outer(g_rate, g_rate)
+        # the unconstrained step is d* = A^-1 b; limits make it a small QP on the same quadratic
         if self.settings.method == "gradient":
-            step = gradient_step(H, grad)
+            A, b = np.eye(H.shape[0]), state.step_scale * gradient_step(H, grad)
         else:
-            step = norm_optimal_step(H, grad, self.settings.regularisation)
-        step = state.step_scale * step
-        step, active = self._constrain(step, g_angle, rollout.measured[:, 0])
+            reg = self.settings.regularisation * float(np.trace(H)) / H.shape[0]
+            A, b = (H + reg * np.eye(H.shape[0])) / state.step_scale, grad
+        step, active = self._solve_step(A, b, theta, self._violated(g_angle, rollout.measured[:, 0]))
         new_theta = np.clip(theta + step, self.p_low, self.p_high)
         applied = new_theta - theta
         pred_e = e - g_angle @ applied
