@@ -235,10 +235,17 @@ class GradientLearner:
         aborted = len(rollout.t) < self.task.n_steps + 1
         if best_cost is not None and (aborted or cost > self.settings.guard_factor * best_cost):
             new_state = LearnerState(theta=list(state.best_theta), best_theta=state.best_theta,
-                                     best_cost=best_cost, step_scale=0.5 * state.step_scale,
-                                     trial=state.trial + 1)
+                                     best_cost=best_cost, step_scale=max(0.5 * state.step_scale, 1.0 / 64),
+                                     trial=state.trial + 1, extra={"last_cost": None})
             result = UpdateResult(True, 2, STATUS_MESSAGES[2], cost, best_cost, 0.0, 0, new_state.step_scale, False)
             return self.profile(new_state.theta), new_state, result
+        # adapt the step: halve it after a trial that got worse than the one before, regrow it by
+        # 25 % (up to 1) after one that improved; a model gradient that is a descent direction for
+        # the plant converges for a small enough step (Owens et al. 2009; Bertsekas & Tsitsiklis 2000)
+        last = state.extra.get("last_cost")
+        scale = state.step_scale
+        if last is not None:
+            scale = max(scale * 0.5, 1.0 / 64) if cost > last else min(scale * 1.25, 1.0)
         if best_cost is None or cost < best_cost:
             best_cost, best_theta = cost, theta.tolist()
         else:
@@ -256,11 +263,14 @@ class GradientLearner:
         H = g_angle.T @ (W[:, None] * g_angle) + w_rate * np.outer(g_rate, g_rate)
         # the unconstrained step is d* = A^-1 b; limits make it a small QP on the same quadratic
         if self.settings.method == "gradient":
-            A, b = np.eye(H.shape[0]), state.step_scale * gradient_step(H, grad)
+            A, b = np.eye(H.shape[0]), scale * gradient_step(H, grad)
         else:
             reg = self.settings.regularisation * float(np.trace(H)) / H.shape[0]
-            A, b = (H + reg * np.eye(H.shape[0])) / state.step_scale, grad
-        step, active = self._solve_step(A, b, theta, self._violated(g_angle, rollout.measured[:, 0]))
+            A, b = (H + reg * np.eye(H.shape[0])) / scale, grad
+        limits = self._violated(g_angle, rollout.measured[:, 0])
+        if limits is not None:      # the step is d = T v with T = the step scale: alpha T g_i
+            limits = (limits[0], scale * limits[1])
+        step, active = self._solve_step(A, b, theta, limits)
         new_theta = np.clip(theta + step, self.p_low, self.p_high)
         applied = new_theta - theta
         pred_e = e - g_angle @ applied
@@ -269,7 +279,7 @@ class GradientLearner:
         boxed = int(np.count_nonzero((new_theta <= self.p_low) | (new_theta >= self.p_high)))
         status = 1 if (active or boxed) else 0
         new_state = LearnerState(theta=new_theta.tolist(), best_theta=best_theta, best_cost=best_cost,
-                                 step_scale=state.step_scale, trial=state.trial + 1)
+                                 step_scale=scale, trial=state.trial + 1, extra={"last_cost": cost})
         result = UpdateResult(True, status, STATUS_MESSAGES[status], cost, predicted,
-                              float(np.max(np.abs(applied))) / 1e3, active + boxed, state.step_scale, True)
+                              float(np.max(np.abs(applied))) / 1e3, active + boxed, scale, True)
         return self.profile(new_state.theta), new_state, result
