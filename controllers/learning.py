@@ -174,9 +174,9 @@ class GradientLearner:
 
     def _violated(self, g_angle, y):
         """Rows ``M v >= h`` of the Muehlebach–Jordan velocity-level constraints for the angle
-        limits violated in the measured trial (``g_i >= 0`` form; every 4th sample is enough at the
-        knot spacing); ``None`` when nothing is violated."""
-        idx = np.arange(len(y))[:: 2]
+        limits violated in the measured trial (``g_i >= 0`` form; a sample every 4 ms is enough at
+        the knot spacing); ``None`` when nothing is violated."""
+        idx = np.arange(len(y))[:: max(1, int(round(0.004 / self.task.dt)))]
         lo = idx[y[idx] < self.angle_low]
         hi = idx[y[idx] > self.angle_high]
         if lo.size + hi.size == 0:
@@ -211,9 +211,9 @@ class GradientLearner:
             return z_free * sigma, 0
         bounds = list(zip(lo, hi))
         z = z0
-        # quadratic penalty on the angle constraints, tightened three times (L-BFGS-B keeps the box);
+        # quadratic penalty on the angle constraints, tightened once (L-BFGS-B keeps the box);
         # robust where an active-set QP meets this problem's scaling
-        for rho in ((1e2, 1e4, 1e6) if cons else (0.0,)):
+        for rho in ((1e3, 1e6) if cons else (0.0,)):
             def fun(z, rho=rho):
                 val, grad = 0.5 * z @ As @ z - bs @ z, As @ z - bs
                 if cons:
@@ -221,7 +221,7 @@ class GradientLearner:
                     val, grad = val + 0.5 * rho * short @ short, grad + rho * (Ms.T @ short)
                 return val, grad
             z = minimize(fun, z, jac=True, method="L-BFGS-B", bounds=bounds,
-                         options={"maxiter": 500, "ftol": 1e-15, "gtol": 1e-10}).x
+                         options={"maxiter": 300, "ftol": 1e-13, "gtol": 1e-9}).x
         z = np.clip(z, lo, hi)
         binding = 0 if not cons else int(np.count_nonzero(Ms @ z - hs < 1e-4))
         return z * sigma, binding
