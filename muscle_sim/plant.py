@@ -14,8 +14,8 @@ import numpy as np
 
 from . import joint as _joint
 from . import muscle as _muscle
-from .pneumatics import (chamber_pressure_rate, iso6358_mass_flow, iso6358_mass_flow_f,
-                         regulator_pressure_rate, R_AIR)
+from .pneumatics import (LINEAR_FROM, R_AIR, RHO0, T0, chamber_pressure_rate, iso6358_mass_flow,
+                         regulator_pressure_rate)
 from .params import PlantParams
 
 STATE_NAMES = ("angle", "rate", "pressure_a", "pressure_b", "spool_a", "spool_b")
@@ -138,76 +138,103 @@ def holding_pressures(params: PlantParams, angle: float, base_pressure: float):
 @functools.lru_cache(maxsize=64)
 def scalar_kernel(params: PlantParams):
     """The scalar right-hand side with every constant of ``params`` bound once: a function
-    ``f(q, qd, pa, pb, sa, sb, ua, ub) -> 6-tuple``. Same equations as :func:`rhs` (muscle
-    :func:`~muscle_sim.muscle.chamber_terms`, joint torques, ISO 6358 valves, chamber), inlined for
-    the single environment's speed; ``tests/test_scalar_path.py`` holds the two together."""
+    ``f(q, qd, pa, pb, sa, sb, ua, ub) -> 6-tuple``, the Python-float twin of :func:`rhs`.
+
+    The same equations as the batched core, written out in one body for the single environment's
+    speed: muscle :func:`~muscle_sim.muscle.chamber_terms` (Chou & Hannaford 1996 thick-wall area
+    and volume, Tondu & Lopez 2000 end correction, Tondu 2012 braid friction), the joint's
+    :func:`~muscle_sim.joint.passive_torque` and Hunt-Crossley :func:`~muscle_sim.joint.stop_torque`,
+    ISO 6358 valve flow (:func:`~muscle_sim.pneumatics.iso6358_mass_flow`, skipped while a spool is
+    exactly closed) into the Richer & Hurmuzlu (2000) chamber, or the regulator lag. Operations
+    keep the batched order where rounding matters; ``tests/test_scalar_path.py`` holds the two
+    together to 1e-12. Cached per (frozen, hashable) ``params``.
+    """
     m, j, pn = params.muscle, params.joint, params.pneumatics
+    # muscle geometry (Tondu & Lopez 2000; Chou & Hannaford 1996)
     eps_max = _muscle.max_contraction(m)
     k_end, cos0 = m.end_correction, math.cos(m.rest_braid_angle)
+    c_last = (1.0 - k_end * eps_max) * cos0            # braid cosine held past eps_max
     d0, wall = m.neutral_diameter, m.wall_thickness
+    two_wall, d0_wall, wall_sq = 2.0 * wall, d0 * wall, wall * wall
+    has_wall = wall > 0.0
     vol_scale = 0.25 * math.pi * m.rest_length / (cos0 * k_end)
     area_ideal = 0.25 * math.pi * d0 * d0
-    wall_a, wall_b = math.pi * d0 * wall, math.pi * wall * wall
+    pi = math.pi
     thr = m.threshold_pressure
     fric_scale, fric_rate = m.braid_friction * math.pi * m.rest_radius ** 2, m.friction_rate_scale
+    has_fric = fric_scale > 0.0
+    # joint
     rp, l0, eps0 = j.pulley_radius, m.rest_length, j.pre_contraction
     inv_j = 1.0 / j.total_inertia
     visc, coul, coul_rate, grav, grav_off = (j.viscous_damping, j.coulomb_torque, j.coulomb_rate_scale,
                                              j.gravity_moment, j.gravity_offset)
+    has_coul, has_grav = coul > 0.0, grav > 0.0
     lo_stop, hi_stop, k_stop, c_stop = j.lower_stop, j.upper_stop, j.stop_stiffness, j.stop_damping
+    # pneumatics
     dead = pn.dead_volume
     lag = pn.model == "lag"
     supply, atm, tau_lag, max_rate = pn.supply_pressure, pn.atmosphere, pn.lag_time_constant, pn.max_pressure_rate
-    gain, tau_v = pn.valve_gain / _BAR, pn.valve_time_constant
+    valve_gain, tau_v = pn.valve_gain, pn.valve_time_constant
     supply_abs = supply + atm
-    C, b, m_sub, temp = pn.sonic_conductance, pn.critical_ratio, pn.subsonic_index, pn.temperature
-    rt = R_AIR * temp
+    C, b, m_sub = pn.sonic_conductance, pn.critical_ratio, pn.subsonic_index
+    one_b, sqrt_sub = 1.0 - b, m_sub == 0.5
+    x_lin = (LINEAR_FROM - b) / (1.0 - b)
+    shape_lin = (1.0 - x_lin * x_lin) ** m_sub          # ISO 6358 shape where the line starts
+    one_lin = 1.0 - LINEAR_FROM
+    sqrt_t = math.sqrt(T0 / pn.temperature)
+    rt = R_AIR * pn.temperature
     k_in, k_out, k_ch = pn.k_in, pn.k_out, pn.k_chamber
     sqrt, tanh, sin = math.sqrt, math.tanh, math.sin
-    tan_fric = bool(fric_scale)
-    has_grav, has_coul = bool(grav), bool(coul)
-
-    def muscle(p, eps, rate):
-        e = eps_max if eps > eps_max else (0.0 if eps < 0.0 else eps)
-        c = (1.0 - k_end * e) * cos0
-        s = sqrt(1.0 - c * c)
-        di = d0 * s - 2.0 * wall
-        vol = vol_scale * di * di * c
-        if eps < 0.0 or eps > eps_max:
-            return 0.0, 0.0, vol
-        area = area_ideal * (3.0 * c * c - 1.0)
-        if wall > 0.0:
-            area += wall_a * (2.0 * s - 1.0 / s) - wall_b
-        if area <= 0.0:
-            return 0.0, 0.0, vol
-        pn_ = p - thr if p > thr else 0.0
-        f = pn_ * area
-        if tan_fric:
-            f -= fric_scale * pn_ * tanh(rate / fric_rate)
-        return (f if f > 0.0 else 0.0), area, vol
-
-    def chamber(p, s, u, vol, vrate):
-        if lag:
-            target = 0.0 if u < 0.0 else (supply if u > supply else u)
-            dp = (target - p) / tau_lag
-            return (max_rate if dp > max_rate else (-max_rate if dp < -max_rate else dp)), 0.0
-        target = gain * (u - p)
-        target = 1.0 if target > 1.0 else (-1.0 if target < -1.0 else target)
-        ds = (target - s) / tau_v
-        p_abs = p + atm
-        mdot = 0.0
-        if s > 0.0:
-            mdot = iso6358_mass_flow_f(C * s, b, supply_abs, p_abs, temp, m_sub)
-        elif s < 0.0:
-            mdot = -iso6358_mass_flow_f(-C * s, b, p_abs, atm, temp, m_sub)
-        weighted = k_in * mdot if mdot >= 0.0 else k_out * mdot
-        return (rt * weighted - k_ch * p_abs * vrate) / vol, ds
 
     def f(q, qd, pa, pb, sa, sb, ua, ub):
         shift = rp * q / l0
         rate = rp * qd / l0
-        fa, area_a, vol_a = muscle(pa, eps0 + shift, rate)
-        fb, area_b, vol_b = muscle(pb, eps0 - shift, -rate)
+        vr = rp * qd
+        # ---- muscle A: contraction eps0 + shift, contraction rate +rate
+        eps = eps0 + shift
+        c = cos0 if eps < 0.0 else (c_last if eps > eps_max else (1.0 - k_end * eps) * cos0)
+        s = sqrt(1.0 - c * c)
+        fa = area_a = 0.0
+        if 0.0 <= eps <= eps_max:
+            area_a = area_ideal * (3.0 * c * c - 1.0)
+            if has_wall:
+                area_a = area_a + pi * (d0_wall * (2.0 * s - 1.0 / s) - wall_sq)
+            if area_a > 0.0:
+                p_net = pa - thr
+                if p_net > 0.0:
+                    fa = p_net * area_a
+                    if has_fric:
+                        fa = fa - fric_scale * p_net * tanh(rate / fric_rate)
+                        if fa < 0.0:
+                            fa = 0.0
+            else:
+                area_a = 0.0
+        if not lag:
+            di = d0 * s - two_wall
+            vol_a = vol_scale * di * di * c + dead
+        # ---- muscle B: contraction eps0 - shift, contraction rate -rate
+        eps = eps0 - shift
+        c = cos0 if eps < 0.0 else (c_last if eps > eps_max else (1.0 - k_end * eps) * cos0)
+        s = sqrt(1.0 - c * c)
+        fb = area_b = 0.0
+        if 0.0 <= eps <= eps_max:
+            area_b = area_ideal * (3.0 * c * c - 1.0)
+            if has_wall:
+                area_b = area_b + pi * (d0_wall * (2.0 * s - 1.0 / s) - wall_sq)
+            if area_b > 0.0:
+                p_net = pb - thr
+                if p_net > 0.0:
+                    fb = p_net * area_b
+                    if has_fric:
+                        fb = fb - fric_scale * p_net * tanh(-rate / fric_rate)
+                        if fb < 0.0:
+                            fb = 0.0
+            else:
+                area_b = 0.0
+        if not lag:
+            di = d0 * s - two_wall
+            vol_b = vol_scale * di * di * c + dead
+        # ---- joint: muscles, viscous + smoothed Coulomb friction, gravity, Hunt-Crossley stops
         torque = rp * (fa - fb) - visc * qd
         if has_coul:
             torque -= coul * tanh(qd / coul_rate)
@@ -216,14 +243,74 @@ def scalar_kernel(params: PlantParams):
         if q > hi_stop:
             d = q - hi_stop
             tau = -k_stop * d - c_stop * d * qd
-            torque += tau if tau < 0.0 else 0.0
+            if tau < 0.0:
+                torque += tau
         elif q < lo_stop:
             d = lo_stop - q
             tau = k_stop * d - c_stop * d * qd
-            torque += tau if tau > 0.0 else 0.0
-        vr = rp * qd
-        dpa, dsa = chamber(pa, sa, ua, vol_a + dead, area_a * vr)
-        dpb, dsb = chamber(pb, sb, ub, vol_b + dead, -area_b * vr)
-        return qd, torque * inv_j, dpa, dpb, dsa, dsb
+            if tau > 0.0:
+                torque += tau
+        qdd = torque * inv_j
+        # ---- chambers
+        if lag:   # first-order regulator, command clipped to [0, supply], rate to max_rate
+            target = 0.0 if ua < 0.0 else (supply if ua > supply else ua)
+            dpa = (target - pa) / tau_lag
+            dpa = max_rate if dpa > max_rate else (-max_rate if dpa < -max_rate else dpa)
+            target = 0.0 if ub < 0.0 else (supply if ub > supply else ub)
+            dpb = (target - pb) / tau_lag
+            dpb = max_rate if dpb > max_rate else (-max_rate if dpb < -max_rate else dpb)
+            return qd, qdd, dpa, dpb, 0.0, 0.0
+        # spool: first-order lag towards the inner loop's clipped opening
+        target = valve_gain * (ua - pa) / _BAR
+        target = 1.0 if target > 1.0 else (-1.0 if target < -1.0 else target)
+        dsa = (target - sa) / tau_v
+        target = valve_gain * (ub - pb) / _BAR
+        target = 1.0 if target > 1.0 else (-1.0 if target < -1.0 else target)
+        dsb = (target - sb) / tau_v
+        # chamber A: ISO 6358 flow from supply (s > 0) or to exhaust (s < 0), polytropic chamber
+        p_abs = pa + atm
+        dpa = -k_ch * p_abs * (area_a * vr)
+        if sa != 0.0:
+            if sa > 0.0:
+                up, down, cond = supply_abs, p_abs, C * sa
+            else:
+                up, down, cond = p_abs, atm, C * -sa
+            hi, lo = (up, down) if up >= down else (down, up)
+            ratio = lo / hi
+            if ratio <= b:
+                shape = 1.0
+            elif ratio <= LINEAR_FROM:
+                xs = (ratio - b) / one_b
+                shape = sqrt(1.0 - xs * xs) if sqrt_sub else (1.0 - xs * xs) ** m_sub
+            else:
+                shape = shape_lin * (1.0 - ratio) / one_lin
+            mdot = cond * RHO0 * hi * sqrt_t * shape
+            if (up < down) != (sa < 0.0):     # net flow out of the chamber
+                mdot = -mdot
+            dpa = rt * (k_in * mdot if mdot >= 0.0 else k_out * mdot) - k_ch * p_abs * (area_a * vr)
+        dpa = dpa / vol_a
+        # chamber B: the same
+        p_abs = pb + atm
+        dpb = -k_ch * p_abs * (-area_b * vr)
+        if sb != 0.0:
+            if sb > 0.0:
+                up, down, cond = supply_abs, p_abs, C * sb
+            else:
+                up, down, cond = p_abs, atm, C * -sb
+            hi, lo = (up, down) if up >= down else (down, up)
+            ratio = lo / hi
+            if ratio <= b:
+                shape = 1.0
+            elif ratio <= LINEAR_FROM:
+                xs = (ratio - b) / one_b
+                shape = sqrt(1.0 - xs * xs) if sqrt_sub else (1.0 - xs * xs) ** m_sub
+            else:
+                shape = shape_lin * (1.0 - ratio) / one_lin
+            mdot = cond * RHO0 * hi * sqrt_t * shape
+            if (up < down) != (sb < 0.0):
+                mdot = -mdot
+            dpb = rt * (k_in * mdot if mdot >= 0.0 else k_out * mdot) - k_ch * p_abs * (-area_b * vr)
+        dpb = dpb / vol_b
+        return qd, qdd, dpa, dpb, dsa, dsb
 
     return f
