@@ -568,6 +568,9 @@ def main(argv=None) -> int:
     except (ConfigError, DataError, ParameterError, UnitError, BadInput) as exc:
         print(f"pamjoint {args.command}: error: {exc}", file=sys.stderr)
         return EXIT_BAD_INPUT
+    except BrokenPipeError:          # output piped into e.g. `head`: not an error of ours
+        sys.stderr.close()
+        return 0
     except KeyboardInterrupt:
         print(f"pamjoint {args.command}: interrupted; finished files are complete, none is half-written",
               file=sys.stderr)
