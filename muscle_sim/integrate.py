@@ -2,6 +2,7 @@
 delay, divergence checks, and a scipy ``solve_ivp`` reference path for tests."""
 from __future__ import annotations
 
+import functools
 import math
 from collections import deque
 
@@ -40,22 +41,33 @@ def rk4_step(t, x, u, h, params):
 
 
 def rk4_step_f(t, x, u, h, params):
-    """One RK4 step on Python floats with the bound scalar kernel (:func:`plant.scalar_kernel`)."""
-    return _rk4_kernel_step(scalar_kernel(params), x, u, h)
+    """One classical RK4 step on Python floats: the float twin of :func:`rk4_step`, through the
+    bound scalar kernel (:func:`muscle_sim.plant.scalar_kernel`); returns a list of 6 floats."""
+    return _rk4_kernel_step(scalar_kernel(params), x, u[0], u[1], 0.5 * h, h, h / 6.0)
 
 
-def _rk4_kernel_step(f, x, u, h):
-    ua, ub = u
+def _rk4_kernel_step(f, x, ua, ub, hh, h, h6):
+    """RK4 of the kernel ``f`` written out over the six states (step ``h``, ``hh = h/2``,
+    ``h6 = h/6``): no lists, no loops."""
     x0, x1, x2, x3, x4, x5 = x
-    hh = 0.5 * h
     a0, a1, a2, a3, a4, a5 = f(x0, x1, x2, x3, x4, x5, ua, ub)
     b0, b1, b2, b3, b4, b5 = f(x0 + hh * a0, x1 + hh * a1, x2 + hh * a2, x3 + hh * a3, x4 + hh * a4, x5 + hh * a5, ua, ub)
     c0, c1, c2, c3, c4, c5 = f(x0 + hh * b0, x1 + hh * b1, x2 + hh * b2, x3 + hh * b3, x4 + hh * b4, x5 + hh * b5, ua, ub)
     d0, d1, d2, d3, d4, d5 = f(x0 + h * c0, x1 + h * c1, x2 + h * c2, x3 + h * c3, x4 + h * c4, x5 + h * c5, ua, ub)
-    h6 = h / 6.0
     return [x0 + h6 * (a0 + 2.0 * (b0 + c0) + d0), x1 + h6 * (a1 + 2.0 * (b1 + c1) + d1),
             x2 + h6 * (a2 + 2.0 * (b2 + c2) + d2), x3 + h6 * (a3 + 2.0 * (b3 + c3) + d3),
             x4 + h6 * (a4 + 2.0 * (b4 + c4) + d4), x5 + h6 * (a5 + 2.0 * (b5 + c5) + d5)]
+
+
+@functools.lru_cache(maxsize=64)
+def _command_offsets(n_delay: int, n_substeps: int) -> tuple:
+    """Index into the command history of the command acting at each sub-step (as
+    :meth:`Stepper._command_for`), for the scalar path."""
+    out = []
+    for j in range(n_substeps):
+        lag = n_delay - j
+        out.append(-1 - (0 if lag <= 0 else -(-lag // n_substeps)))
+    return tuple(out)
 
 
 def _diverged(x) -> bool:
@@ -113,29 +125,45 @@ class Stepper:
     def step(self, u):
         """Advance one control step with command ``u`` [Pa]; returns the new state."""
         if self.batch is None:
-            u = (float(u[0]), float(u[1]))
-        else:
-            u = np.broadcast_to(np.asarray(u, dtype=float), (self.batch, 2)).copy()
+            # the scalar path on Python floats: same sub-steps, delay, clamp and checks as below
+            history = self._history
+            history.append((float(u[0]), float(u[1])))
+            f, h = self._kernel, self.h
+            hh, h6 = 0.5 * h, h / 6.0
+            supply = self.params.pneumatics.supply_pressure
+            x = self.x
+            for back in _command_offsets(self.n_delay, self.n_substeps):
+                ua, ub = history[back]
+                x = _rk4_kernel_step(f, x, ua, ub, hh, h, h6)
+                p = x[2]                              # clamp_pressures: [0, supply]
+                if p < 0.0:
+                    x[2] = 0.0
+                elif p > supply:
+                    x[2] = supply
+                p = x[3]
+                if p < 0.0:
+                    x[3] = 0.0
+                elif p > supply:
+                    x[3] = supply
+            self.k += 1
+            self.t = self.k * self.control_dt          # t0_plus(k)
+            q, qd = x[0], x[1]
+            rest = x[2] + x[3] + x[4] + x[5]          # rest - rest == 0 unless inf or nan (or overflow)
+            if not (abs(q) < ANGLE_LIMIT and abs(qd) < RATE_LIMIT
+                    and (rest - rest == 0.0 or all(map(math.isfinite, x)))):
+                raise SimulationDiverged(f"state left the physical range at t = {self.t:.4f} s: {x}")
+            self.x = x
+            return x
+        u = np.broadcast_to(np.asarray(u, dtype=float), (self.batch, 2)).copy()
         self._history.append(u)
         h, p = self.h, self.params
         x, t = self.x, self.t
-        supply = p.pneumatics.supply_pressure
         for j in range(self.n_substeps):
-            uj = self._command_for(j)
-            if self.batch is None:
-                x = _rk4_kernel_step(self._kernel, x, uj, h)
-                x[2] = min(max(x[2], 0.0), supply)
-                x[3] = min(max(x[3], 0.0), supply)
-            else:
-                x = clamp_pressures(p, rk4_step(t, x, uj, h, p))
+            x = clamp_pressures(p, rk4_step(t, x, self._command_for(j), h, p))
             t += h
         self.k += 1
         self.t = self.t0_plus(self.k)
-        if self.batch is None:
-            q, qd = x[0], x[1]
-            if not (all(map(math.isfinite, x)) and abs(q) < ANGLE_LIMIT and abs(qd) < RATE_LIMIT):
-                raise SimulationDiverged(f"state left the physical range at t = {self.t:.4f} s: {x}")
-        elif _diverged(x):
+        if _diverged(x):
             raise SimulationDiverged(f"state left the physical range at t = {self.t:.4f} s")
         self.x = x
         return x

@@ -65,21 +65,35 @@ def measure(sensors: SensorParams, x, filtered_pressure, rng: np.random.Generato
 
 
 def measure_f(sensors: SensorParams, x, filtered_pressure, rng: np.random.Generator, dt: float):
-    """Python-float twin of :func:`measure` for one state; draws the same random numbers in the
-    same order as :func:`measure` with a batch of one."""
+    """Python-float twin of :func:`measure` for one state (same equations, no numpy arrays).
+
+    Draws the same random numbers in the same order as :func:`measure` with a batch of one
+    (angle, rate, pressure A, pressure B, each only where its level is non-zero), in one call:
+    a Generator's normals come out the same drawn together or one by one."""
     blend = sensors.pressure_blend(dt)
-    fa = filtered_pressure[0] + blend * (x[2] - filtered_pressure[0])
-    fb = filtered_pressure[1] + blend * (x[3] - filtered_pressure[1])
-    angle, rate, pa, pb = x[0], x[1], fa, fb
-    if sensors.angle_noise:
-        angle += sensors.angle_noise * float(rng.standard_normal())
+    f0, f1 = filtered_pressure
+    fa = f0 + blend * (x[2] - f0)
+    fb = f1 + blend * (x[3] - f1)
+    angle, rate = x[0], x[1]
+    angle_noise, rate_noise, pressure_noise = sensors.angle_noise, sensors.rate_noise, sensors.pressure_noise
+    if angle_noise and rate_noise and pressure_noise:          # the usual case: every sensor noisy
+        za, zr, z1, z2 = rng.standard_normal(4).tolist()
+        angle += angle_noise * za
+        rate += rate_noise * zr
+        pa, pb = fa + pressure_noise * z1, fb + pressure_noise * z2
+    else:
+        pa, pb = fa, fb
+        if angle_noise or rate_noise or pressure_noise:
+            z = rng.standard_normal((angle_noise != 0.0) + (rate_noise != 0.0) + 2 * (pressure_noise != 0.0))
+            z = z.tolist()
+            if angle_noise:
+                angle += angle_noise * z.pop(0)
+            if rate_noise:
+                rate += rate_noise * z.pop(0)
+            if pressure_noise:
+                pa += pressure_noise * z[0]
+                pb += pressure_noise * z[1]
     if sensors.angle_counts:
         step = 2.0 * math.pi / sensors.angle_counts
         angle = round(angle / step) * step
-    if sensors.rate_noise:
-        rate += sensors.rate_noise * float(rng.standard_normal())
-    if sensors.pressure_noise:
-        na, nb = rng.standard_normal(2)
-        pa += sensors.pressure_noise * float(na)
-        pb += sensors.pressure_noise * float(nb)
     return [angle, rate, pa, pb], (fa, fb)
