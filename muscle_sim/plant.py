@@ -147,74 +147,55 @@ def scalar_kernel(params: PlantParams):
     ISO 6358 valve flow (:func:`~muscle_sim.pneumatics.iso6358_mass_flow`, skipped while a spool is
     exactly closed) into the Richer & Hurmuzlu (2000) chamber
     (:func:`~muscle_sim.pneumatics.chamber_pressure_rate`), or the regulator lag
-    (:func:`~muscle_sim.pneumatics.regulator_pressure_rate`). Products of constants are folded
-    once here, so results differ from :func:`rhs` by rounding only; ``tests/test_scalar_path.py``
-    holds the two together to 1e-12. Cached per (frozen, hashable) ``params``.
+    (:func:`~muscle_sim.pneumatics.regulator_pressure_rate`).
+
+    Every operation runs in the batched core's order (only constants of ``params`` are computed
+    ahead, as the batched code computes them), so the two agree bit for bit except where libm and
+    numpy round ``tanh``, ``sin`` or ``**`` differently in the last place. That matters: near
+    equilibrium the chamber's valve-flow and volume-change terms nearly cancel, and regrouped
+    products would show there as relative differences far above 1e-12. ``tests/test_scalar_path.py``
+    holds the two together. Cached per (frozen, hashable) ``params``.
     """
     m, j, pn = params.muscle, params.joint, params.pneumatics
-    rp = j.pulley_radius
-    per_rad = rp / m.rest_length                       # contraction per radian of joint angle
-    eps0 = j.pre_contraction
-    # muscle: braid cosine c = (1 - k eps) cos(alpha0), eps = eps0 +- per_rad q clipped to [0, eps_max]
+    rp, l0, eps0 = j.pulley_radius, m.rest_length, j.pre_contraction
+    # muscle: braid cosine c = (1 - k eps) cos(alpha0) with eps clipped to [0, eps_max]
     eps_max = _muscle.max_contraction(m)
     k_end, cos0 = m.end_correction, math.cos(m.rest_braid_angle)
-    c_mid, c_per_rad = (1.0 - k_end * eps0) * cos0, k_end * cos0 * per_rad   # c = c_mid -+ c_per_rad q
     c_last = (1.0 - k_end * eps_max) * cos0
-    # (c, c^2, sin) of the rest shape, held while slack, and of the last, held past eps_max
-    rest_shape = (cos0, cos0 * cos0, math.sqrt(1.0 - cos0 * cos0))
-    last_shape = (c_last, c_last * c_last, math.sqrt(1.0 - c_last * c_last))
-    # joint angles where muscle A (eps0 + per_rad q) and B (eps0 - per_rad q) are taut and pulling
-    q_taut_a, q_full_a = -eps0 / per_rad, (eps_max - eps0) / per_rad
-    q_taut_b, q_full_b = eps0 / per_rad, -(eps_max - eps0) / per_rad
+    # (c, sin) of the rest shape, held while slack, and of the last shape, held past eps_max
+    rest_shape = (cos0, math.sqrt(1.0 - cos0 * cos0))
+    last_shape = (c_last, math.sqrt(1.0 - c_last * c_last))
+    # area -dV/dL = pi D0^2 (3 c^2 - 1) / 4 [+ pi (D0 t (2 s - 1/s) - t^2) with a wall]
     d0, wall = m.neutral_diameter, m.wall_thickness
-    # area -dV/dL = pi D0^2 (3 c^2 - 1) / 4 + pi (D0 t (2 s - 1/s) - t^2) = a3 c^2 + w2 s - w1/s - a0
-    # (w1 = w2 = 0 without a wall: exactly the ideal area)
-    a3 = 3.0 * 0.25 * math.pi * d0 * d0
-    w2, w1 = 2.0 * math.pi * d0 * wall, math.pi * d0 * wall
-    a0 = 0.25 * math.pi * d0 * d0 + math.pi * wall * wall
-    # volume pi (D0 s - 2 t)^2 l0 c / (4 k cos(alpha0)) = c (v0 - v2 c^2 - v1 s), s^2 = 1 - c^2
-    vol_scale = 0.25 * math.pi * m.rest_length / (cos0 * k_end)
-    v0, v2, v1 = vol_scale * (d0 * d0 + 4.0 * wall * wall), vol_scale * d0 * d0, vol_scale * 4.0 * d0 * wall
+    area_ideal, d0_wall, wall_sq, has_wall = 0.25 * math.pi * d0 * d0, d0 * wall, wall * wall, wall > 0.0
+    pi = math.pi
+    # volume pi (D0 s - 2 t)^2 (l0 c / cos(alpha0)) / (4 k)
+    quarter_pi, two_wall = 0.25 * math.pi, 2.0 * wall
     thr = m.threshold_pressure
     fric = m.braid_friction * math.pi * m.rest_radius ** 2      # mu pi r0^2
-    fric_per_rate = per_rad / m.friction_rate_scale             # tanh argument per rad/s
+    fric_rate = m.friction_rate_scale
     has_fric = fric > 0.0
-    # joint, every torque divided by the inertia
-    inv_j = 1.0 / j.total_inertia
-    rp_j, visc_j = rp * inv_j, j.viscous_damping * inv_j
-    coul_j, grav_j, grav_off = j.coulomb_torque * inv_j, j.gravity_moment * inv_j, j.gravity_offset
-    inv_coul_rate = 1.0 / j.coulomb_rate_scale
-    has_coul, has_grav = coul_j > 0.0, grav_j > 0.0
-    lo_stop, hi_stop = j.lower_stop, j.upper_stop
-    k_stop_j, c_stop_j = j.stop_stiffness * inv_j, j.stop_damping * inv_j
+    # joint
+    inertia = j.total_inertia
+    visc, coul, coul_rate = j.viscous_damping, j.coulomb_torque, j.coulomb_rate_scale
+    grav, grav_off = j.gravity_moment, j.gravity_offset
+    has_coul, has_grav = coul > 0.0, grav > 0.0
+    lo_stop, hi_stop, k_stop, c_stop = j.lower_stop, j.upper_stop, j.stop_stiffness, j.stop_damping
     # pneumatics
     dead = pn.dead_volume
     lag = pn.model == "lag"
     supply, atm, max_rate = pn.supply_pressure, pn.atmosphere, pn.max_pressure_rate
-    inv_tau_lag = 1.0 / pn.lag_time_constant
-    gain, inv_tau_v = pn.valve_gain / _BAR, 1.0 / pn.valve_time_constant
+    tau_lag, valve_gain, tau_v = pn.lag_time_constant, pn.valve_gain, pn.valve_time_constant
     supply_abs = supply + atm
-    inv_supply_abs = 1.0 / supply_abs
-    b, m_sub = pn.critical_ratio, pn.subsonic_index
-    inv_one_b = 1.0 / (1.0 - b)
+    C, b, m_sub = pn.sonic_conductance, pn.critical_ratio, pn.subsonic_index
+    one_b, sqrt_sub = 1.0 - b, m_sub == 0.5
+    sqrt_to = LINEAR_FROM if sqrt_sub else -1.0        # ratios up to here: the sqrt ellipse inline
     x_lin = (LINEAR_FROM - b) / (1.0 - b)
-    lin_slope = (1.0 - x_lin * x_lin) ** m_sub / (1.0 - LINEAR_FROM)   # shape = slope (1 - ratio)
-    # ISO 6358 regimes as chamber pressures: filling (ratio p / p_supply) is choked up to fill_choked,
-    # exhausting (ratio p_atm / p) from exhaust_choked; the sqrt ellipse (m = 1/2) is written out
-    # up to ratio LINEAR_FROM, with x = (ratio - b) / (1 - b) = fill_x p - b_x or exhaust_x / p - b_x
-    sqrt_to = LINEAR_FROM if m_sub == 0.5 else b
-    fill_choked, fill_sqrt_to = b * supply_abs, sqrt_to * supply_abs
-    exhaust_choked = atm / b if b > 0.0 else math.inf
-    exhaust_sqrt_from = atm / sqrt_to if sqrt_to > 0.0 else math.inf
-    fill_x, exhaust_x, b_x = inv_supply_abs * inv_one_b, atm * inv_one_b, b * inv_one_b
-    # mdot = C |s| rho0 p_up sqrt(T0/T) shape; times R T k_in or k_out (Richer & Hurmuzlu) it is
-    # the flow's part of V dp/dt: filling from supply (k_in), exhausting (k_out)
-    flow = pn.sonic_conductance * RHO0 * math.sqrt(T0 / pn.temperature)
+    shape_lin = (1.0 - x_lin * x_lin) ** m_sub          # ISO 6358 shape where the straight line starts
+    one_lin = 1.0 - LINEAR_FROM
+    sqrt_t = math.sqrt(T0 / pn.temperature)
     rt = R_AIR * pn.temperature
     k_in, k_out, k_ch = pn.k_in, pn.k_out, pn.k_chamber
-    k_ch_rp = k_ch * rp
-    fill_gain = rt * k_in * flow * supply_abs
-    exhaust_gain = rt * k_out * flow
     sqrt, tanh, sin = math.sqrt, math.tanh, math.sin
 
     def shape_of(ratio):
@@ -222,141 +203,166 @@ def scalar_kernel(params: PlantParams):
         if ratio <= b:
             return 1.0
         if ratio <= LINEAR_FROM:
-            x = (ratio - b) * inv_one_b
-            return (1.0 - x * x) ** m_sub
-        return lin_slope * (1.0 - ratio)
+            x = (ratio - b) / one_b
+            return sqrt(1.0 - x * x) if sqrt_sub else (1.0 - x * x) ** m_sub
+        return shape_lin * (1.0 - ratio) / one_lin
 
-    def reverse_inflow(s, p_abs):
-        """``R T k mdot`` into the chamber when the pressures run against the open spool ``s``
-        (chamber above supply while filling, below atmosphere while exhausting): the ports swap
-        roles and the flow runs backwards. Only inside RK4 stages, so kept out of line."""
-        up, down = (supply_abs, p_abs) if s > 0.0 else (p_abs, atm)
-        hi, lo = (down, up) if up < down else (up, down)
-        sign = (1.0 if s > 0.0 else -1.0) * (1.0 if up >= down else -1.0)
-        mdot = sign * flow * abs(s) * hi * shape_of(lo / hi)
+    def inflow(s, p_abs):
+        """``R T k mdot``: the valve's part of ``V dp/dt`` through spool opening ``s`` (signed:
+        > 0 to supply, < 0 to exhaust) at chamber pressure ``p_abs``, either way round."""
+        if s > 0.0:
+            up, down, filling = supply_abs, p_abs, True
+        else:
+            up, down, filling = p_abs, atm, False
+        hi, lo, forward = (up, down, True) if up >= down else (down, up, False)
+        q = C * abs(s) * RHO0 * hi * sqrt_t * shape_of(lo / hi)
+        mdot = q if forward == filling else -q
         return rt * (k_in * mdot if mdot >= 0.0 else k_out * mdot)
 
     def f(q, qd, pa, pb, sa, sb, ua, ub):
-        dc = c_per_rad * q
-        friction = fric * tanh(qd * fric_per_rate) if has_fric else 0.0   # braid, per unit pressure
-        # ---- muscle A (contraction eps0 + per_rad q): tension >= 0 with rate-signed friction, area
-        if q >= q_taut_a and q <= q_full_a:
-            c_a = c_mid - dc
-            cc_a = c_a * c_a
-            sin_a = sqrt(1.0 - cc_a)
-            area_a = a3 * cc_a + w2 * sin_a - w1 / sin_a - a0
+        shift = rp * q / l0
+        # braid friction's rate factor; tanh is odd, so muscle B (rate of the other sign) takes -th
+        th = tanh(rp * qd / l0 / fric_rate) if has_fric else 0.0
+        # ---- muscle A (contraction eps0 + shift): tension >= 0 with rate-signed friction, area
+        eps = eps0 + shift
+        if eps >= 0.0 and eps <= eps_max:
+            c_a = (1.0 - k_end * eps) * cos0
+            sin_a = sqrt(1.0 - c_a * c_a)
+            area_a = area_ideal * (3.0 * c_a * c_a - 1.0)
+            if has_wall:
+                area_a = area_a + pi * (d0_wall * (2.0 * sin_a - 1.0 / sin_a) - wall_sq)
             if area_a > 0.0:
-                fa = (pa - thr) * (area_a - friction) if pa > thr else 0.0
-                if fa < 0.0:
+                if pa > thr:
+                    p_net = pa - thr
+                    fa = p_net * area_a
+                    if has_fric:
+                        fa = fa - fric * p_net * th
+                        if fa < 0.0:
+                            fa = 0.0
+                else:
                     fa = 0.0
             else:
                 area_a = fa = 0.0
         else:          # slack (rest shape) or past eps_max (last shape): no pull, no area
             area_a = fa = 0.0
-            c_a, cc_a, sin_a = rest_shape if q < q_taut_a else last_shape
-        # ---- muscle B (contraction eps0 - per_rad q, contraction rate of the opposite sign)
-        if q <= q_taut_b and q >= q_full_b:
-            c_b = c_mid + dc
-            cc_b = c_b * c_b
-            sin_b = sqrt(1.0 - cc_b)
-            area_b = a3 * cc_b + w2 * sin_b - w1 / sin_b - a0
+            c_a, sin_a = rest_shape if eps < 0.0 else last_shape
+        # ---- muscle B (contraction eps0 - shift, contraction rate of the opposite sign)
+        eps = eps0 - shift
+        if eps >= 0.0 and eps <= eps_max:
+            c_b = (1.0 - k_end * eps) * cos0
+            sin_b = sqrt(1.0 - c_b * c_b)
+            area_b = area_ideal * (3.0 * c_b * c_b - 1.0)
+            if has_wall:
+                area_b = area_b + pi * (d0_wall * (2.0 * sin_b - 1.0 / sin_b) - wall_sq)
             if area_b > 0.0:
-                fb = (pb - thr) * (area_b + friction) if pb > thr else 0.0
-                if fb < 0.0:
+                if pb > thr:
+                    p_net = pb - thr
+                    fb = p_net * area_b
+                    if has_fric:
+                        fb = fb + fric * p_net * th
+                        if fb < 0.0:
+                            fb = 0.0
+                else:
                     fb = 0.0
             else:
                 area_b = fb = 0.0
         else:
             area_b = fb = 0.0
-            c_b, cc_b, sin_b = rest_shape if q > q_taut_b else last_shape
-        # ---- joint (per unit inertia): muscles, viscous + smoothed Coulomb friction, gravity,
-        # Hunt-Crossley end stops that never pull into the stop
-        qdd = rp_j * (fa - fb) - visc_j * qd
+            c_b, sin_b = rest_shape if eps < 0.0 else last_shape
+        # ---- joint: muscles, viscous + smoothed Coulomb friction, gravity, Hunt-Crossley end
+        # stops that never pull the paddle into the stop
+        passive = visc * qd
         if has_coul:
-            qdd -= coul_j * tanh(qd * inv_coul_rate)
+            passive = passive + coul * tanh(qd / coul_rate)
+        passive = -passive
         if has_grav:
-            qdd -= grav_j * sin(q + grav_off)
+            passive = passive - grav * sin(q + grav_off)
+        torque = rp * (fa - fb) + passive
         if q > hi_stop:
             d = q - hi_stop
-            tau = -k_stop_j * d - c_stop_j * d * qd
+            tau = -k_stop * d - c_stop * d * qd
             if tau < 0.0:
-                qdd += tau
+                torque = torque + tau
         elif q < lo_stop:
-            d = lo_stop - q
-            tau = k_stop_j * d - c_stop_j * d * qd
+            d = q - lo_stop
+            tau = -k_stop * d - c_stop * -d * qd
             if tau > 0.0:
-                qdd += tau
+                torque = torque + tau
+        qdd = torque / inertia
         # ---- chambers
         if lag:   # first-order regulator, command clipped to [0, supply], rate to max_rate
             target = 0.0 if ua < 0.0 else (supply if ua > supply else ua)
-            dpa = (target - pa) * inv_tau_lag
+            dpa = (target - pa) / tau_lag
             dpa = max_rate if dpa > max_rate else (-max_rate if dpa < -max_rate else dpa)
             target = 0.0 if ub < 0.0 else (supply if ub > supply else ub)
-            dpb = (target - pb) * inv_tau_lag
+            dpb = (target - pb) / tau_lag
             dpb = max_rate if dpb > max_rate else (-max_rate if dpb < -max_rate else dpb)
             return qd, qdd, dpa, dpb, 0.0, 0.0
         # spools: first-order lag towards the inner loop's opening gain (p_cmd - p) / 1 bar in [-1, 1]
-        target = gain * (ua - pa)
+        target = valve_gain * (ua - pa) / _BAR
         if target > 1.0:
             target = 1.0
         elif target < -1.0:
             target = -1.0
-        dsa = (target - sa) * inv_tau_v
-        target = gain * (ub - pb)
+        dsa = (target - sa) / tau_v
+        target = valve_gain * (ub - pb) / _BAR
         if target > 1.0:
             target = 1.0
         elif target < -1.0:
             target = -1.0
-        dsb = (target - sb) * inv_tau_v
-        # chambers: dp/dt = (R T k mdot - k_ch p_abs dV/dt) / V with V = muscle + dead volume and
-        # dV/dt = +-A r_p qd; the usual (forward) ISO 6358 flows written out, the rest out of line
-        kv = k_ch_rp * qd
+        dsb = (target - sb) / tau_v
+        # chambers: dp/dt = (R T k mdot - k_ch p_abs dV/dt) / V with dV/dt = +-A r_p qd and
+        # V = muscle + dead volume. The usual ISO 6358 flows (from supply, or to exhaust, choked or
+        # on the sqrt ellipse) are written out; mdot = C |s| rho0 p_up sqrt(T0/T) shape
+        vr = rp * qd
         p_abs = pa + atm
-        dpa = -kv * area_a * p_abs
-        if sa > 0.0:                                   # open to supply
-            if p_abs <= fill_choked:
-                dpa += sa * fill_gain
-            elif p_abs <= fill_sqrt_to:
-                x = fill_x * p_abs - b_x
-                dpa += sa * fill_gain * sqrt(1.0 - x * x)
-            elif p_abs <= supply_abs:
-                dpa += sa * fill_gain * shape_of(p_abs * inv_supply_abs)
+        dpa = -k_ch * p_abs * (area_a * vr)
+        if sa > 0.0 and p_abs <= supply_abs:                 # filling
+            ratio = p_abs / supply_abs
+            if ratio <= b:
+                dpa += rt * (k_in * (C * sa * RHO0 * supply_abs * sqrt_t))
+            elif ratio <= sqrt_to:
+                x = (ratio - b) / one_b
+                dpa += rt * (k_in * (C * sa * RHO0 * supply_abs * sqrt_t * sqrt(1.0 - x * x)))
             else:
-                dpa += reverse_inflow(sa, p_abs)
-        elif sa < 0.0:                                 # open to exhaust
-            if p_abs >= exhaust_choked:
-                dpa += sa * exhaust_gain * p_abs
-            elif p_abs >= exhaust_sqrt_from:
-                x = exhaust_x / p_abs - b_x
-                dpa += sa * exhaust_gain * p_abs * sqrt(1.0 - x * x)
-            elif p_abs >= atm:
-                dpa += sa * exhaust_gain * p_abs * shape_of(atm / p_abs)
+                dpa += inflow(sa, p_abs)
+        elif sa < 0.0 and p_abs >= atm:                      # exhausting
+            ratio = atm / p_abs
+            if ratio <= b:
+                dpa -= rt * (k_out * (C * -sa * RHO0 * p_abs * sqrt_t))
+            elif ratio <= sqrt_to:
+                x = (ratio - b) / one_b
+                dpa -= rt * (k_out * (C * -sa * RHO0 * p_abs * sqrt_t * sqrt(1.0 - x * x)))
             else:
-                dpa += reverse_inflow(sa, p_abs)
-        dpa /= c_a * (v0 - v2 * cc_a - v1 * sin_a) + dead
+                dpa += inflow(sa, p_abs)
+        elif sa != 0.0:
+            dpa += inflow(sa, p_abs)
+        di = d0 * sin_a - two_wall
+        dpa = dpa / (quarter_pi * di * di * (l0 * c_a / cos0) / k_end + dead)
         p_abs = pb + atm
-        dpb = kv * area_b * p_abs
-        if sb > 0.0:
-            if p_abs <= fill_choked:
-                dpb += sb * fill_gain
-            elif p_abs <= fill_sqrt_to:
-                x = fill_x * p_abs - b_x
-                dpb += sb * fill_gain * sqrt(1.0 - x * x)
-            elif p_abs <= supply_abs:
-                dpb += sb * fill_gain * shape_of(p_abs * inv_supply_abs)
+        dpb = k_ch * p_abs * (area_b * vr)               # dV/dt of B is -A r_p qd
+        if sb > 0.0 and p_abs <= supply_abs:
+            ratio = p_abs / supply_abs
+            if ratio <= b:
+                dpb += rt * (k_in * (C * sb * RHO0 * supply_abs * sqrt_t))
+            elif ratio <= sqrt_to:
+                x = (ratio - b) / one_b
+                dpb += rt * (k_in * (C * sb * RHO0 * supply_abs * sqrt_t * sqrt(1.0 - x * x)))
             else:
-                dpb += reverse_inflow(sb, p_abs)
-        elif sb < 0.0:
-            if p_abs >= exhaust_choked:
-                dpb += sb * exhaust_gain * p_abs
-            elif p_abs >= exhaust_sqrt_from:
-                x = exhaust_x / p_abs - b_x
-                dpb += sb * exhaust_gain * p_abs * sqrt(1.0 - x * x)
-            elif p_abs >= atm:
-                dpb += sb * exhaust_gain * p_abs * shape_of(atm / p_abs)
+                dpb += inflow(sb, p_abs)
+        elif sb < 0.0 and p_abs >= atm:
+            ratio = atm / p_abs
+            if ratio <= b:
+                dpb -= rt * (k_out * (C * -sb * RHO0 * p_abs * sqrt_t))
+            elif ratio <= sqrt_to:
+                x = (ratio - b) / one_b
+                dpb -= rt * (k_out * (C * -sb * RHO0 * p_abs * sqrt_t * sqrt(1.0 - x * x)))
             else:
-                dpb += reverse_inflow(sb, p_abs)
-        dpb /= c_b * (v0 - v2 * cc_b - v1 * sin_b) + dead
+                dpb += inflow(sb, p_abs)
+        elif sb != 0.0:
+            dpb += inflow(sb, p_abs)
+        di = d0 * sin_b - two_wall
+        dpb = dpb / (quarter_pi * di * di * (l0 * c_b / cos0) / k_end + dead)
         return qd, qdd, dpa, dpb, dsa, dsb
 
     return f
