@@ -77,6 +77,3 @@ class SPSALearner(GradientLearner):
                               float(np.max(np.abs(a_k * ghat))) / 1e3, 0, 1.0, True)
         return self.profile(nxt.theta), nxt, result
 
-    def final_theta(self, state: LearnerState):
-        """The unperturbed estimate after the last completed pair."""
-        return state.extra["center"]

@@ -49,6 +49,22 @@ def _pressure_list(text: str) -> list[float]:
     return out
 
 
+def _print_json(obj) -> int:
+    """Print a result as JSON for scripts (NaN as null); exit code 0."""
+    from .records import json_safe
+
+    print(json.dumps(json_safe(obj), indent=2))
+    return 0
+
+
+def _trials(args, setup) -> int:
+    """``--trials`` or the config's ``learning.trials``, checked."""
+    trials = args.trials if args.trials is not None else setup.config.get("learning.trials")
+    if trials < 1:
+        raise BadInput(f"--trials: {trials} is not allowed; must be >= 1")
+    return trials
+
+
 def _out_dir(args, kind: str) -> Path:
     from .records import new_run_dir
 
@@ -90,8 +106,7 @@ def cmd_muscle(args) -> int:
             "safety": safety.GENERAL, "plot": str(png)}
     write_json_atomic(out / "muscle_map.json", data)
     if args.json:
-        print(json.dumps(data, indent=2))
-        return 0
+        return _print_json(data)
     print(f"muscle of {cfg.source}: rest length {params.rest_length * 1e3:g} mm, rest radius "
           f"{params.rest_radius * 1e3:g} mm, rest braid angle {math.degrees(params.rest_braid_angle):.2f} deg")
     print(f"maximum contraction {data['max_contraction_pct']:.1f} %, usable up to "
@@ -151,10 +166,7 @@ def cmd_check(args) -> int:
                             "swing_start_s": setup.task.swing_start, "turn_time_s": setup.task.turn_time,
                             "control_steps": setup.task.n_steps}}
     if args.json:
-        from .records import json_safe
-
-        print(json.dumps(json_safe(resolved), indent=2))
-        return 0
+        return _print_json(resolved)
     print(f"{cfg.source}: valid (hash {cfg.digest}); values in SI units (m, rad, s, Pa gauge, kg):")
 
     def show(node, prefix=""):
@@ -185,10 +197,7 @@ def cmd_run(args) -> int:
     summary = run_episodes(setup, controller, args.episodes, args.seed, out,
                            progress=None if args.json else sys.stderr)
     if args.json:
-        from .records import json_safe
-
-        print(json.dumps(json_safe(summary), indent=2))
-        return 0
+        return _print_json(summary)
     print(f"{args.episodes} episode(s) of {setup.config.source} with controller '{controller.name}', seed {args.seed}")
     print(f"{'episode':>7} {'rms [deg]':>10} {'strike angle err [deg]':>23} {'speed err [%]':>14} {'peak [kPa]':>11}")
     for row in summary["episodes"]:
@@ -220,9 +229,7 @@ def cmd_tune(args) -> int:
     from .simulation import Setup
 
     setup = Setup.from_config(args.config)
-    trials = args.trials if args.trials is not None else setup.config.get("learning.trials")
-    if trials < 1:
-        raise BadInput(f"--trials: {trials} is not allowed; must be >= 1")
+    trials = _trials(args, setup)
     method = args.method or setup.config.get("learning.method")
     if args.resume:
         out = Path(args.resume)
@@ -247,10 +254,7 @@ def cmd_tune(args) -> int:
     except ValueError as exc:
         raise BadInput(str(exc)) from None
     if args.json:
-        from .records import json_safe
-
-        print(json.dumps(json_safe(summary), indent=2))
-        return 0
+        return _print_json(summary)
     best = summary["trials"][summary["best_trial"]]
     print(f"{summary['message']}; best trial {summary['best_trial']}: rms {best['rms_error_deg']:.3f} deg, "
           f"strike {best['strike_angle_error_deg']:+.3f} deg, speed {best['strike_speed_error_pct']:+.2f} %")
@@ -266,17 +270,12 @@ def cmd_compare(args) -> int:
     from .simulation import Setup
 
     setup = Setup.from_config(args.config)
-    trials = args.trials if args.trials is not None else setup.config.get("learning.trials")
-    if trials < 1:
-        raise BadInput(f"--trials: {trials} is not allowed; must be >= 1")
+    trials = _trials(args, setup)
     out = _out_dir(args, "compare")
     _print_cautions(setup)
     data = compare(setup, trials, args.seed, out, method=args.method or setup.config.get("learning.method"))
     if args.json:
-        from .records import json_safe
-
-        print(json.dumps(json_safe(data), indent=2))
-        return 0
+        return _print_json(data)
     print(f"comparison on {setup.config.source}, seed {args.seed}, after {trials} learning trials:")
     print(_METRIC_HEAD.replace(" " * 20, f"{'controller':>20}", 1))
     for name, m in data["controllers"].items():
@@ -316,10 +315,7 @@ def cmd_learn_step(args) -> int:
                        log.measured[:, 2:4][np.isfinite(log.measured[:, 2:4])])
     report["logged_trial"] = {k: m[k] for k in ("rms_error_deg", "strike_angle_error_deg", "strike_speed_error_pct")}
     if args.json:
-        from .records import json_safe
-
-        print(json.dumps(json_safe(report), indent=2))
-        return 0
+        return _print_json(report)
     lt = report["logged_trial"]
     print(f"logged trial: rms {lt['rms_error_deg']:.3f} deg, strike angle {lt['strike_angle_error_deg']:+.3f} deg, "
           f"strike speed {lt['strike_speed_error_pct']:+.2f} %")
@@ -390,10 +386,7 @@ def cmd_calibrate(args) -> int:
     write_text_atomic(out / "fitted_muscle.yaml", snippet)
     write_json_atomic(out / "calibration.json", report)
     if args.json:
-        from .records import json_safe
-
-        print(json.dumps(json_safe(report), indent=2))
-        return 0
+        return _print_json(report)
     print(f"fitted {data.force.size} bench points of {args.data}: {result.message}")
     for n, prm in report["parameters"].items():
         print(f"  {n:18s} {prm['value']:.5g} +- {prm['std']:.2g} {prm['unit']}")
@@ -454,10 +447,7 @@ def cmd_plan(args) -> int:
               "safety": safety.GENERAL + " " + safety.HARDWARE}
     write_json_atomic(out / "plan.json", report)
     if args.json:
-        from .records import json_safe
-
-        print(json.dumps(json_safe(report), indent=2))
-        return 0
+        return _print_json(report)
     print(f"plan of {setup.config.source} on the prior model, minimising {result.objective}: {result.message}")
     print(f"  strike {math.degrees(result.strike_angle):.3f} deg at {task.strike_time * 1e3:g} ms with "
           f"{result.strike_speed:.3f} rad/s (wanted {math.degrees(task.strike_angle):g} deg, {task.strike_speed:g} rad/s)")

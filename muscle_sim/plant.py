@@ -96,12 +96,6 @@ def clamp_pressures(params: PlantParams, x):
     return x
 
 
-def mechanical_power(params: PlantParams, x):
-    """Power the muscles deliver to the joint, ``r_p (F_a - F_b) qd`` [W] (batched)."""
-    (fa, fb), _, _ = muscle_forces(params, x)
-    return params.joint.pulley_radius * (fa - fb) * x[..., 1]
-
-
 def equilibrium_torque(params: PlantParams, angle, pressures):
     """Static muscle torque ``r_p (F_a - F_b)`` at rest [N m] (no friction)."""
     x = np.zeros(np.broadcast_shapes(np.shape(angle), np.shape(pressures[0])) + (N_STATE,))

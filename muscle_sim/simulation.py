@@ -112,13 +112,6 @@ class StrikeTrial:
         """Whether the trial has reached its last sample."""
         return self.k >= self.task.n_steps
 
-    def stop_penetration(self, x=None):
-        """How far the joint is inside an end stop [rad] (0 when clear)."""
-        x = self.stepper.x if x is None else x
-        q = x[0] if self.batch is None else x[:, 0]
-        j = self.params.joint
-        return np.maximum(np.maximum(q - j.upper_stop, j.lower_stop - q), 0.0)
-
     def rollout(self, controller: str = "", seed=None) -> Rollout:
         """The recorded (single) trial as a :class:`~muscle_sim.records.Rollout`."""
         if self.batch is not None:
@@ -131,10 +124,4 @@ class StrikeTrial:
                 "supply_pressure_kpa": self.params.pneumatics.supply_pressure / 1e3}
         return Rollout(t=t, measured=np.array(self._log_y, dtype=float), command=u,
                        true_state=np.array(self._log_x, dtype=float), reference=ref, metadata=meta)
-
-
-def command_from_action(action, rated_pressure: float):
-    """Map actions in [-1, 1] linearly onto 0..rated gauge pressure [Pa]."""
-    return (np.asarray(action, dtype=float) + 1.0) * (0.5 * rated_pressure)
-
 
