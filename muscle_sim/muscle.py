@@ -152,7 +152,7 @@ def tension(params: McKibbenParams, pressure, contraction, contraction_rate):
     pulling = effective_area(params, contraction) > 0.0
     f = static_force(params, pressure, contraction) - braid_friction_force(
         params, pressure, contraction_rate)
-    return np.where(pulling, np.maximum(f, 0.0), 0.0)
+    return np.where(pulling, params.force_scale * np.maximum(f, 0.0), 0.0)
 
 
 def chamber_terms(params: McKibbenParams, pressure, contraction, contraction_rate):
@@ -168,5 +168,6 @@ def chamber_terms(params: McKibbenParams, pressure, contraction, contraction_rat
     area = np.where(inside, np.maximum(_area_at_cos(params, c), 0.0), 0.0)
     p_net = net_pressure(params, pressure)
     pull = p_net * area - braid_friction_force(params, pressure, contraction_rate)
-    return np.where(area > 0.0, np.maximum(pull, 0.0), 0.0), area, _volume_at_cos(params, c)
+    tension_ = np.where(area > 0.0, params.force_scale * np.maximum(pull, 0.0), 0.0)
+    return tension_, area, _volume_at_cos(params, c)
 

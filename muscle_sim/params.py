@@ -67,6 +67,10 @@ class McKibbenParams:
         Thread-on-thread friction as a fraction of ``pi r0^2 P`` (Tondu 2012 review) [-].
     friction_rate_scale : float
         Contraction rate at which the smoothed (tanh) friction reaches 76 % of its level [1/s].
+    force_scale : float
+        Multiplier on the pulling force [-]: 1 for the model as written; a prior identified from
+        trials uses it to absorb a force-model error (measured McKibben forces fall short of the
+        inelastic-braid law, e.g. Tondu & Lopez 2000, Fig. 6).
     """
 
     rest_length: float
@@ -78,6 +82,7 @@ class McKibbenParams:
     threshold_pressure: float = 0.0
     braid_friction: float = 0.0
     friction_rate_scale: float = 0.05
+    force_scale: float = 1.0
 
     def __post_init__(self) -> None:
         own = type(self).__name__
@@ -97,6 +102,7 @@ class McKibbenParams:
                     high_open=True)
         check_range(own, "braid_friction", self.braid_friction, 0.0, 1.0)
         check_positive(own, "friction_rate_scale", self.friction_rate_scale, "1/s")
+        check_range(own, "force_scale", self.force_scale, 0.05, 20.0)
         # the braid widens as it contracts, so a wall thinner than r0 fits at every contraction;
         # but the wall must leave a pulling area at rest (Chou & Hannaford 1996 thick-wall form)
         c, s = math.cos(self.rest_braid_angle), math.sin(self.rest_braid_angle)

@@ -169,6 +169,7 @@ def scalar_kernel(params: PlantParams):
     fric = m.braid_friction * math.pi * m.rest_radius ** 2      # mu pi r0^2
     fric_rate = m.friction_rate_scale
     has_fric = fric > 0.0
+    force_scale = m.force_scale
     # joint
     inertia = j.total_inertia
     visc, coul, coul_rate = j.viscous_damping, j.coulomb_torque, j.coulomb_rate_scale
@@ -263,6 +264,7 @@ def scalar_kernel(params: PlantParams):
         else:
             area_b = fb = 0.0
             c_b, sin_b = rest_shape if eps < 0.0 else last_shape
+        fa, fb = force_scale * fa, force_scale * fb
         # ---- joint: muscles, viscous + smoothed Coulomb friction, gravity, Hunt-Crossley end
         # stops that never pull the paddle into the stop
         passive = visc * qd
