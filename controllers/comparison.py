@@ -8,6 +8,7 @@ import numpy as np
 from muscle_sim import safety
 from muscle_sim.records import save_figure_atomic, write_json_atomic, write_text_atomic
 from muscle_sim.runs import run_trial
+from muscle_sim.threads import single_blas_thread
 
 from .base import PressureProfile
 from .tuning import METRIC_KEYS, trial_rng, tune
@@ -20,6 +21,7 @@ def _evaluate(setup, controller, trial: int, seed: int):
     return rollout, metrics
 
 
+@single_blas_thread
 def compare(setup, trials: int, seed: int, out, method: str = "norm-optimal", progress=None) -> dict:
     """Learn for ``trials`` trials (with ``method`` and with SPSA), then run every controller once on
     the same plant (as it is after those trials, drift included) with the same noise seed."""

@@ -19,6 +19,8 @@ from dataclasses import asdict, dataclass, field
 
 import numpy as np
 
+from muscle_sim.threads import single_blas_thread
+
 from .base import PressureProfile
 from .basis import HatBasis
 from .sensitivity import linearise, measured_states
@@ -227,6 +229,7 @@ class GradientLearner:
         return z * sigma, binding
 
     # -- the update ----------------------------------------------------------------------------
+    @single_blas_thread
     def update(self, rollout, profile: PressureProfile, state: LearnerState):
         """Next profile and state from the trial ``rollout`` run with ``profile`` (= state.theta)."""
         theta = np.asarray(state.theta, dtype=float)

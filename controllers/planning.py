@@ -16,6 +16,7 @@ import numpy as np
 from muscle_sim.integrate import simulate
 from muscle_sim.plant import initial_state
 from muscle_sim.simulation import home_pressures
+from muscle_sim.threads import single_blas_thread
 
 from .learning import GradientLearner, LearningSettings
 from .sensitivity import linearise
@@ -63,6 +64,7 @@ class _Model:
         return self
 
 
+@single_blas_thread
 def plan(setup, objective: str = "peak-pressure", max_pressure_rate: float | None = None,
          max_iterations: int = 150) -> PlanResult:
     """Plan the strike of ``setup`` on its prior model (see the module docstring)."""

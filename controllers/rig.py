@@ -7,6 +7,7 @@ from pathlib import Path
 import numpy as np
 
 from muscle_sim.errors import DataError
+from muscle_sim.threads import single_blas_thread
 
 from .base import PressureProfile
 from .learning import LearnerState
@@ -22,6 +23,7 @@ def state_path_for(profile_path) -> Path:
     return p.with_suffix(".state.json")
 
 
+@single_blas_thread
 def learn_step(setup, log, profile: PressureProfile, state: LearnerState | None = None, method: str | None = None):
     """Next profile, state and result from a logged trial ``log`` that ran ``profile``.
 

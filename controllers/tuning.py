@@ -16,6 +16,7 @@ import numpy as np
 from muscle_sim import safety
 from muscle_sim.records import read_log, write_json_atomic
 from muscle_sim.runs import run_trial
+from muscle_sim.threads import single_blas_thread
 
 from .learning import GradientLearner, LearnerState, LearningSettings
 from .modelfree import SPSALearner
@@ -58,6 +59,7 @@ def final_theta(learner, state: LearnerState):
     return state.best_theta if state.best_theta is not None else state.theta
 
 
+@single_blas_thread
 def tune(setup, method: str, trials: int, seed: int, out, resume: bool = False, start=None, callback=None) -> dict:
     """Run ``trials`` learning trials (drift included); returns the summary written to ``out``.
 

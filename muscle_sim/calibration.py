@@ -16,6 +16,7 @@ import numpy as np
 from . import muscle as _muscle
 from .errors import DataError
 from .params import NEUTRAL_BRAID_ANGLE, McKibbenParams
+from .threads import single_blas_thread
 
 BENCH_UNITS = {
     "pressure": {"bar": 1e5, "kPa": 1e3, "Pa": 1.0, "MPa": 1e6, "psi": 6894.757293168},
@@ -85,6 +86,7 @@ def model_force(base: McKibbenParams, data: BenchData, end_correction, braid_ang
     return np.where(static > 0, np.maximum(static - data.direction * fric, 0.0), 0.0)
 
 
+@single_blas_thread
 def calibrate(base: McKibbenParams, data: BenchData) -> CalibrationResult:
     """Fit end correction, effective braid angle and (with both branches) friction to ``data``."""
     from scipy.optimize import least_squares

@@ -11,6 +11,7 @@ from pathlib import Path
 
 from . import safety
 from .errors import ConfigError, DataError, ParameterError
+from .threads import single_blas_thread
 from .units import UnitError, to_si
 
 EXIT_BAD_INPUT = 2
@@ -549,8 +550,10 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
+@single_blas_thread
 def main(argv=None) -> int:
-    """Entry point of the ``pamjoint`` console script; returns the exit code."""
+    """Entry point of the ``pamjoint`` console script; returns the exit code. BLAS runs on one
+    thread (:mod:`muscle_sim.threads`), so every output is the same whatever the thread settings."""
     parser = build_parser()
     args = parser.parse_args(argv)
     try:
