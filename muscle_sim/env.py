@@ -10,7 +10,7 @@ from gymnasium import spaces
 
 from .errors import SimulationDiverged
 from .simulation import Setup, StrikeTrial
-from .tasks import FAULT_PENALTY, reference, step_reward_f, strike_metrics
+from .tasks import FAULT_PENALTY, reference, step_reward, strike_metrics
 
 DEMO_CONFIG = Path(__file__).resolve().parent.parent / "configs" / "flipper.yaml"
 RATE_BOUND = 60.0  # rad/s, observation bound of the angular rate
@@ -108,8 +108,7 @@ class FlipperStrikeEnv(gym.Env):
         self.action_space = spaces.Box(-1.0, 1.0, (2,), dtype=np.float32)
         low, high = observation_bounds(self.setup)
         self.observation_space = spaces.Box(low, high, dtype=np.float32)
-        self._low, self._high = low.astype(float), high.astype(float)
-        self.trial = StrikeTrial(self.setup, batch=None)
+        self.trial = StrikeTrial(self.setup)
         self._episode = -1
         self._started = False
         self._ref = reference(self.setup.task, self.setup.task.times)[0].tolist()
@@ -152,7 +151,7 @@ class FlipperStrikeEnv(gym.Env):
             info["fault"] = f"diverged: {exc}"
             return self._obs(self.trial._log_y[-1]), -FAULT_PENALTY, True, False, info
         k = self.trial.k
-        reward = step_reward_f(task, k, y[0], y[1], self._ref[k])
+        reward = float(step_reward(task, k, y[0], y[1], self._ref[k]))
         q = self.trial.state[0]
         terminated = not (self._fault_band[0] <= q <= self._fault_band[1])
         truncated = bool(self.trial.done and not terminated)

@@ -1,16 +1,21 @@
 """Fixed-step RK4 with an integer number of sub-steps per control step, the command transport
-delay, divergence checks, and a scipy ``solve_ivp`` reference path for tests."""
+delay, divergence checks, and a scipy ``solve_ivp`` reference path for tests.
+
+The control step is one compiled call (:func:`advance_batch`) for one state or a batch of
+4096: RK4 on :func:`muscle_sim.plant.plant_rate` for every sub-step, the delayed command
+looked up per sub-step, each member with its own parameter row if given. Nothing clamps the
+state afterwards: the right-hand side itself keeps pressures physical.
+"""
 from __future__ import annotations
 
-import functools
 import math
-from collections import deque
 
 import numpy as np
 
+from .compiled import law
 from .errors import ParameterError, SimulationDiverged
-from .plant import N_STATE, clamp_pressures, rhs, scalar_kernel
 from .params import PlantParams
+from .plant import N_STATE, pack, plant_rate, rhs
 
 #: Angle and rate magnitudes past which a state counts as diverged [rad], [rad/s].
 ANGLE_LIMIT = 20.0
@@ -26,85 +31,134 @@ def check_substeps(control_dt: float, n_substeps) -> int:
     return int(n_substeps)
 
 
+def delay_steps(delay: float, step: float) -> int:
+    """A delay [s] as a whole number of steps of ``step`` [s], rounded half up: the one rounding
+    every path uses (simulator sub-steps, learner and feedforward control steps)."""
+    return int(math.floor(delay / step + 0.5 + 1e-9))
+
+
 def delay_substeps(params: PlantParams, control_dt: float, n_substeps: int) -> int:
-    """Command delay rounded to whole physics sub-steps."""
-    return int(round(params.pneumatics.delay / (control_dt / n_substeps)))
+    """Command delay of ``params`` in whole physics sub-steps."""
+    return delay_steps(params.pneumatics.delay, control_dt / n_substeps)
+
+
+def command_slots(n_delay: int, n_substeps: int) -> np.ndarray:
+    """For each sub-step of a control step, how many control steps back (0 = this step's
+    command) the command acting there was given, for a delay of ``n_delay`` sub-steps."""
+    back = [0 if n_delay - j <= 0 else -(-(n_delay - j) // n_substeps) for j in range(n_substeps)]
+    return np.array(back, dtype=np.int64)
+
+
+@law
+def _rk4(x, ua, ub, h, P):
+    """One classical RK4 step of :func:`~muscle_sim.plant.plant_rate` from the 6-tuple ``x``."""
+    hh = 0.5 * h
+    a = plant_rate(x[0], x[1], x[2], x[3], x[4], x[5], ua, ub, 0.0, 0.0, P)
+    b = plant_rate(x[0] + hh * a[0], x[1] + hh * a[1], x[2] + hh * a[2], x[3] + hh * a[3], x[4] + hh * a[4],
+                   x[5] + hh * a[5], ua, ub, 0.0, 0.0, P)
+    c = plant_rate(x[0] + hh * b[0], x[1] + hh * b[1], x[2] + hh * b[2], x[3] + hh * b[3], x[4] + hh * b[4],
+                   x[5] + hh * b[5], ua, ub, 0.0, 0.0, P)
+    d = plant_rate(x[0] + h * c[0], x[1] + h * c[1], x[2] + h * c[2], x[3] + h * c[3], x[4] + h * c[4],
+                   x[5] + h * c[5], ua, ub, 0.0, 0.0, P)
+    h6 = h / 6.0
+    return (x[0] + h6 * (a[0] + 2.0 * (b[0] + c[0]) + d[0]), x[1] + h6 * (a[1] + 2.0 * (b[1] + c[1]) + d[1]),
+            x[2] + h6 * (a[2] + 2.0 * (b[2] + c[2]) + d[2]), x[3] + h6 * (a[3] + 2.0 * (b[3] + c[3]) + d[3]),
+            x[4] + h6 * (a[4] + 2.0 * (b[4] + c[4]) + d[4]), x[5] + h6 * (a[5] + 2.0 * (b[5] + c[5]) + d[5]))
+
+
+@law
+def _rk4_into(x, u, P, h, out):
+    for i in range(x.shape[0]):
+        r = _rk4((x[i, 0], x[i, 1], x[i, 2], x[i, 3], x[i, 4], x[i, 5]), u[i, 0], u[i, 1], h, P)
+        for k in range(N_STATE):
+            out[i, k] = r[k]
+
+
+@law
+def advance_batch(x, history, command, slots, rows, h):
+    """Advance every member of ``x`` (B, 6) by one control step, in place.
+
+    ``history`` (D, B, 2) holds the last D commands, oldest first; ``command`` (B, 2) is this
+    step's, pushed in first; sub-step j uses ``history[D - 1 - slots[j]]``. ``rows`` (1 or B,
+    N_PACKED) are the parameter rows. Returns the index of the first member that left the
+    physical range (non-finite, |angle| >= ANGLE_LIMIT or |rate| >= RATE_LIMIT), or -1.
+    """
+    depth, n = history.shape[0], x.shape[0]
+    for i in range(n):
+        for d in range(depth - 1):
+            history[d, i, 0] = history[d + 1, i, 0]
+            history[d, i, 1] = history[d + 1, i, 1]
+        history[depth - 1, i, 0] = command[i, 0]
+        history[depth - 1, i, 1] = command[i, 1]
+    bad = -1
+    for i in range(n):
+        P = rows[i if rows.shape[0] > 1 else 0]
+        s = (x[i, 0], x[i, 1], x[i, 2], x[i, 3], x[i, 4], x[i, 5])
+        for j in range(slots.shape[0]):
+            src = depth - 1 - slots[j]
+            s = _rk4(s, history[src, i, 0], history[src, i, 1], h, P)
+        for k in range(N_STATE):
+            x[i, k] = s[k]
+        finite = True
+        for k in range(N_STATE):
+            if not math.isfinite(s[k]):
+                finite = False
+        if bad < 0 and not (finite and abs(s[0]) < ANGLE_LIMIT and abs(s[1]) < RATE_LIMIT):
+            bad = i
+    return bad
 
 
 def rk4_step(t, x, u, h, params):
-    """One classical RK4 step of :func:`muscle_sim.plant.rhs` (batched arrays)."""
-    k1 = rhs(t, x, u, params)
-    k2 = rhs(t + 0.5 * h, x + (0.5 * h) * k1, u, params)
-    k3 = rhs(t + 0.5 * h, x + (0.5 * h) * k2, u, params)
-    k4 = rhs(t + h, x + h * k3, u, params)
-    return x + (h / 6.0) * (k1 + 2.0 * (k2 + k3) + k4)
-
-
-def rk4_step_f(t, x, u, h, params):
-    """One classical RK4 step on Python floats: the float twin of :func:`rk4_step`, through the
-    bound scalar kernel (:func:`muscle_sim.plant.scalar_kernel`); returns a list of 6 floats."""
-    return _rk4_kernel_step(scalar_kernel(params), x, u[0], u[1], 0.5 * h, h, h / 6.0)
-
-
-def _rk4_kernel_step(f, x, ua, ub, hh, h, h6):
-    """RK4 of the kernel ``f`` written out over the six states (step ``h``, ``hh = h/2``,
-    ``h6 = h/6``): no lists, no loops."""
-    x0, x1, x2, x3, x4, x5 = x
-    a0, a1, a2, a3, a4, a5 = f(x0, x1, x2, x3, x4, x5, ua, ub)
-    b0, b1, b2, b3, b4, b5 = f(x0 + hh * a0, x1 + hh * a1, x2 + hh * a2, x3 + hh * a3, x4 + hh * a4, x5 + hh * a5, ua, ub)
-    c0, c1, c2, c3, c4, c5 = f(x0 + hh * b0, x1 + hh * b1, x2 + hh * b2, x3 + hh * b3, x4 + hh * b4, x5 + hh * b5, ua, ub)
-    d0, d1, d2, d3, d4, d5 = f(x0 + h * c0, x1 + h * c1, x2 + h * c2, x3 + h * c3, x4 + h * c4, x5 + h * c5, ua, ub)
-    return [x0 + h6 * (a0 + 2.0 * (b0 + c0) + d0), x1 + h6 * (a1 + 2.0 * (b1 + c1) + d1),
-            x2 + h6 * (a2 + 2.0 * (b2 + c2) + d2), x3 + h6 * (a3 + 2.0 * (b3 + c3) + d3),
-            x4 + h6 * (a4 + 2.0 * (b4 + c4) + d4), x5 + h6 * (a5 + 2.0 * (b5 + c5) + d5)]
-
-
-@functools.lru_cache(maxsize=64)
-def _command_offsets(n_delay: int, n_substeps: int) -> tuple:
-    """Index into the command history of the command acting at each sub-step (as
-    :meth:`Stepper._command_for`), for the scalar path."""
-    out = []
-    for j in range(n_substeps):
-        lag = n_delay - j
-        out.append(-1 - (0 if lag <= 0 else -(-lag // n_substeps)))
-    return tuple(out)
-
-
-def _diverged(x) -> bool:
-    q, qd = x[..., 0], x[..., 1]
-    return not (np.all(np.isfinite(x)) and np.all(np.abs(q) < ANGLE_LIMIT) and np.all(np.abs(qd) < RATE_LIMIT))
+    """One classical RK4 step of :func:`muscle_sim.plant.rhs` (numpy face, batched (M, 6))."""
+    x = np.asarray(x, dtype=float)
+    shape = np.broadcast_shapes(x.shape[:-1], np.shape(u)[:-1])
+    xs = np.ascontiguousarray(np.broadcast_to(x, shape + (N_STATE,))).reshape(-1, N_STATE)
+    us = np.ascontiguousarray(np.broadcast_to(np.asarray(u, dtype=float), shape + (2,))).reshape(-1, 2)
+    out = np.empty_like(xs)
+    _rk4_into(xs, us, pack(params), float(h), out)
+    return out.reshape(shape + (N_STATE,))
 
 
 class Stepper:
     """Advances the plant one control step at a time, applying the command delay.
 
-    ``batch=None`` runs one state on Python floats (the fast scalar path); an integer runs a
-    batch of states with numpy. Commands are piecewise constant over each control step; the
-    delay shifts them by a whole number of physics sub-steps.
+    ``batch=None`` runs one state (``x`` is then a (6,) view); an integer runs a batch of
+    states (``x`` is (batch, 6)). ``params`` is one :class:`PlantParams` for all members, or a
+    sequence of ``batch`` of them (one per member, e.g. drifted plants; all with the same delay).
+    Commands are piecewise constant over each control step; the delay shifts them by a whole
+    number of physics sub-steps.
     """
 
-    def __init__(self, params: PlantParams, control_dt: float, n_substeps: int, batch: int | None = None):
-        self.params = params
+    def __init__(self, params, control_dt: float, n_substeps: int, batch: int | None = None):
+        members = [params] if isinstance(params, PlantParams) else list(params)
+        self.params = members[0]
         self.control_dt = float(control_dt)
         self.n_substeps = check_substeps(control_dt, n_substeps)
         self.h = self.control_dt / self.n_substeps
         self.batch = batch
-        self._kernel = scalar_kernel(params) if batch is None else None
-        self.n_delay = delay_substeps(params, control_dt, self.n_substeps)
-        self._history: deque = deque()
-        self.reset(np.zeros(N_STATE) if batch is None else np.zeros((batch, N_STATE)))
+        self._n = 1 if batch is None else int(batch)
+        if len(members) not in (1, self._n):
+            raise ValueError(f"params: {len(members)} parameter sets is not allowed; must be 1 or {self._n}")
+        self.n_delay = delay_substeps(self.params, control_dt, self.n_substeps)
+        if any(delay_substeps(p, control_dt, self.n_substeps) != self.n_delay for p in members):
+            raise ValueError("params: members with different command delays cannot share one stepper")
+        self._rows = np.ascontiguousarray(np.stack([pack(p) for p in members]))
+        self._slots = command_slots(self.n_delay, self.n_substeps)
+        self._depth = int(self._slots.max()) + 1
+        self._x = np.zeros((self._n, N_STATE))
+        self._history = np.zeros((self._depth, self._n, 2))
+        self._command = np.zeros((self._n, 2))
+        self.reset(self._x.copy())
+
+    @property
+    def x(self):
+        """The state now: (6,) for ``batch=None``, else (batch, 6) (the stepper's own array)."""
+        return self._x[0] if self.batch is None else self._x
 
     def reset(self, x0, u_before=None, t0: float = 0.0) -> None:
         """Start from state ``x0``; ``u_before`` is the command assumed before ``t0``."""
-        if self.batch is None:
-            self.x = [float(v) for v in np.asarray(x0, dtype=float)]
-            fill = (0.0, 0.0) if u_before is None else tuple(float(v) for v in u_before)
-        else:
-            self.x = np.array(x0, dtype=float).reshape(self.batch, N_STATE)
-            fill = np.zeros((self.batch, 2)) if u_before is None else np.broadcast_to(
-                np.asarray(u_before, dtype=float), (self.batch, 2)).copy()
-        depth = -(-self.n_delay // self.n_substeps) + 1   # control steps the delay can reach back
-        self._history = deque([fill if self.batch is None else fill.copy() for _ in range(depth)], maxlen=depth)
+        self._x[...] = np.asarray(x0, dtype=float).reshape(-1, N_STATE)
+        self._history[...] = 0.0 if u_before is None else np.asarray(u_before, dtype=float).reshape(-1, 2)
         self.t = float(t0)
         self.k = 0
 
@@ -112,61 +166,19 @@ class Stepper:
         """Restart the batch members where ``mask`` is true (vector autoreset): their state
         becomes ``x0`` and their command history ``u_before``; the others go on untouched."""
         mask = np.asarray(mask, dtype=bool)
-        self.x[mask] = x0
-        for past in self._history:
-            past[mask] = u_before
-
-    def _command_for(self, j: int):
-        """Command acting at sub-step ``j`` of the current control step (after the delay)."""
-        lag = self.n_delay - j                       # sub-steps back from the start of this step
-        back = 0 if lag <= 0 else -(-lag // self.n_substeps)
-        return self._history[-1 - back]
+        self._x[mask] = x0
+        self._history[:, mask] = u_before
 
     def step(self, u):
-        """Advance one control step with command ``u`` [Pa]; returns the new state."""
-        if self.batch is None:
-            # the scalar path on Python floats: same sub-steps, delay, clamp and checks as below
-            history = self._history
-            history.append((float(u[0]), float(u[1])))
-            f, h = self._kernel, self.h
-            hh, h6 = 0.5 * h, h / 6.0
-            supply = self.params.pneumatics.supply_pressure
-            x = self.x
-            for back in _command_offsets(self.n_delay, self.n_substeps):
-                ua, ub = history[back]
-                x = _rk4_kernel_step(f, x, ua, ub, hh, h, h6)
-                p = x[2]                              # clamp_pressures: [0, supply]
-                if p < 0.0:
-                    x[2] = 0.0
-                elif p > supply:
-                    x[2] = supply
-                p = x[3]
-                if p < 0.0:
-                    x[3] = 0.0
-                elif p > supply:
-                    x[3] = supply
-            self.k += 1
-            self.t = self.k * self.control_dt          # t0_plus(k)
-            q, qd = x[0], x[1]
-            rest = x[2] + x[3] + x[4] + x[5]          # rest - rest == 0 unless inf or nan (or overflow)
-            if not (abs(q) < ANGLE_LIMIT and abs(qd) < RATE_LIMIT
-                    and (rest - rest == 0.0 or all(map(math.isfinite, x)))):
-                raise SimulationDiverged(f"state left the physical range at t = {self.t:.4f} s: {x}")
-            self.x = x
-            return x
-        u = np.broadcast_to(np.asarray(u, dtype=float), (self.batch, 2)).copy()
-        self._history.append(u)
-        h, p = self.h, self.params
-        x, t = self.x, self.t
-        for j in range(self.n_substeps):
-            x = clamp_pressures(p, rk4_step(t, x, self._command_for(j), h, p))
-            t += h
+        """Advance one control step with command ``u`` [Pa] ((2,) or (batch, 2)); returns the new
+        state (the stepper's own array: copy it to keep it)."""
+        self._command[...] = u
+        bad = advance_batch(self._x, self._history, self._command, self._slots, self._rows, self.h)
         self.k += 1
-        self.t = self.t0_plus(self.k)
-        if _diverged(x):
-            raise SimulationDiverged(f"state left the physical range at t = {self.t:.4f} s")
-        self.x = x
-        return x
+        self.t = self.k * self.control_dt
+        if bad >= 0:
+            raise SimulationDiverged(f"state left the physical range at t = {self.t:.4f} s: {self._x[bad]}")
+        return self.x
 
     def t0_plus(self, k: int) -> float:
         """Time after ``k`` control steps (exact multiple, no accumulated rounding)."""
@@ -175,12 +187,14 @@ class Stepper:
 
 def simulate(params: PlantParams, x0, commands, control_dt: float, n_substeps: int, u_before=None):
     """Fixed-step trajectory for a command sequence ``commands`` (N, 2) [Pa]; returns (N+1, 6)."""
-    stepper = Stepper(params, control_dt, n_substeps, batch=None)
+    commands = np.asarray(commands, dtype=float)
+    stepper = Stepper(params, control_dt, n_substeps)
     stepper.reset(x0, u_before)
-    out = [list(stepper.x)]
-    for u in np.asarray(commands, dtype=float):
-        out.append(list(stepper.step(u)))
-    return np.array(out)
+    out = np.empty((len(commands) + 1, N_STATE))
+    out[0] = stepper.x
+    for k, u in enumerate(commands):
+        out[k + 1] = stepper.step(u)
+    return out
 
 
 def simulate_reference(params: PlantParams, x0, commands, control_dt: float, n_substeps: int,

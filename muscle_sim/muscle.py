@@ -1,8 +1,9 @@
 """McKibben muscle static model: braid kinematics, volume, force, stiffness and braid friction.
 
-Every function takes a :class:`~muscle_sim.params.McKibbenParams` and numpy arrays (or floats)
-that broadcast against each other; SI units throughout (m, Pa gauge, rad, N). Contraction is
-``eps = (l0 - l) / l0``, relative to the REST length ``l0`` (Tondu & Lopez 2000).
+Each law is written once as a compiled function on floats (``@law``; the plant kernel calls
+these) and exposed as a numpy function that takes a :class:`~muscle_sim.params.McKibbenParams`
+and arrays (or floats) broadcasting against each other; SI units throughout (m, Pa gauge, rad, N).
+Contraction is ``eps = (l0 - l) / l0``, relative to the REST length ``l0`` (Tondu & Lopez 2000).
 
 Model (Chou & Hannaford 1996, IEEE Trans. Robot. Autom. 12(1); Tondu & Lopez 2000, IEEE Control
 Syst. Mag. 20(2)): a braid of thread length ``b = l0 / cos(alpha0)`` and diameter
@@ -15,42 +16,119 @@ from __future__ import annotations
 
 import functools
 import math
+from typing import TYPE_CHECKING
 
 import numpy as np
 
-from .params import McKibbenParams
+from .compiled import broadcast, law
+
+if TYPE_CHECKING:   # params imports this module (max_contraction) to validate, never the reverse
+    from .params import McKibbenParams
 
 _SQRT3 = math.sqrt(3.0)
 
 
-def _area_at_cos(params: McKibbenParams, c):
-    """Net pulling area ``-dV/dL`` [m^2] at braid-angle cosine ``c`` (Chou & Hannaford 1996,
-    thick-wall form; reduces to ``pi D0^2 (3 cos^2 - 1) / 4`` for ``t = 0``)."""
-    d0 = params.neutral_diameter
-    t = params.wall_thickness
-    s = np.sqrt(1.0 - c * c)
-    area = 0.25 * math.pi * d0 * d0 * (3.0 * c * c - 1.0)
-    if t > 0.0:
-        area = area + math.pi * (d0 * t * (2.0 * s - 1.0 / s) - t * t)
+# ---- the laws (floats) -------------------------------------------------------------------------
+@law
+def braid_cosine(contraction, end_correction, cos_rest, eps_max):
+    """``cos(theta) = (1 - k eps) cos(alpha0)`` (Tondu & Lopez 2000); a slack muscle (eps < 0)
+    keeps the rest shape, one past ``eps_max`` the last shape."""
+    eps = min(max(contraction, 0.0), eps_max)
+    return (1.0 - end_correction * eps) * cos_rest
+
+
+@law
+def pulling_area(c, neutral_diameter, wall):
+    """Net pulling area ``-dV/dL`` [m^2] at braid cosine ``c``: Chou & Hannaford (1996) thick-wall
+    form ``pi D0^2 (3 c^2 - 1) / 4 + pi (D0 t (2 s - 1/s) - t^2)``, ``s = sin(theta)``; the first
+    term alone for ``t = 0``."""
+    s = math.sqrt(1.0 - c * c)
+    area = 0.25 * math.pi * neutral_diameter * neutral_diameter * (3.0 * c * c - 1.0)
+    if wall > 0.0:
+        area = area + math.pi * (neutral_diameter * wall * (2.0 * s - 1.0 / s) - wall * wall)
     return area
 
 
+@law
+def bladder_volume(c, neutral_diameter, wall, rest_length, cos_rest, end_correction):
+    """Gas volume [m^3] ``V = pi (D0 s - 2t)^2 L_e / (4 k)``, ``L_e = l0 c / cos(alpha0)`` the
+    equivalent cylinder's length (Chou & Hannaford 1996 with the 1/k scaling that keeps
+    ``F = -P dV/dL`` exact under the Tondu & Lopez end correction)."""
+    s = math.sqrt(1.0 - c * c)
+    inner = neutral_diameter * s - 2.0 * wall
+    return 0.25 * math.pi * inner * inner * (rest_length * c / cos_rest) / end_correction
+
+
+@law
+def active_area(contraction, end_correction, cos_rest, eps_max, neutral_diameter, wall):
+    """Force per unit pressure [m^2]: :func:`pulling_area`, zero when slack or past ``eps_max``."""
+    if contraction < 0.0 or contraction > eps_max:
+        return 0.0
+    area = pulling_area(braid_cosine(contraction, end_correction, cos_rest, eps_max), neutral_diameter, wall)
+    return area if area > 0.0 else 0.0
+
+
+@law
+def muscle_chamber(pressure, contraction, friction_factor, end_correction, cos_rest, eps_max,
+                   neutral_diameter, wall, rest_length, threshold, friction, force_scale):
+    """``(tension [N], pulling area [m^2], volume [m^3])`` of one muscle in one pass.
+
+    Tension ``F = s_F max(P_n A - mu pi r0^2 P_n g, 0)`` with net pressure ``P_n = max(P - P_th, 0)``
+    (bladder threshold after Klute & Hannaford 2000), ``A`` the :func:`active_area`, and braid
+    friction (Tondu 2012) of level ``friction = mu pi r0^2`` [m^2] and signed factor
+    ``g`` in [-1, 1]: ``tanh(deps/dt / s)`` for the smooth law, or minus the Maxwell-slip elements'
+    state; never pushing; ``s_F`` the force scale.
+    """
+    c = braid_cosine(contraction, end_correction, cos_rest, eps_max)
+    vol = bladder_volume(c, neutral_diameter, wall, rest_length, cos_rest, end_correction)
+    area = active_area(contraction, end_correction, cos_rest, eps_max, neutral_diameter, wall)
+    if area <= 0.0 or pressure <= threshold:
+        return 0.0, area, vol
+    p_net = pressure - threshold
+    pull = p_net * area - friction * p_net * friction_factor
+    return (force_scale * pull if pull > 0.0 else 0.0), area, vol
+
+
+# ---- numpy face ---------------------------------------------------------------------------------
+def _tension_one(pressure, contraction, contraction_rate, end_correction, cos_rest, eps_max,
+                 neutral_diameter, wall, rest_length, threshold, friction, rate_scale, force_scale):
+    g = math.tanh(contraction_rate / rate_scale) if friction > 0.0 else 0.0
+    return muscle_chamber(pressure, contraction, g, end_correction, cos_rest, eps_max, neutral_diameter,
+                          wall, rest_length, threshold, friction, force_scale)[0]
+
+
+def _volume_one(contraction, end_correction, cos_rest, eps_max, neutral_diameter, wall, rest_length):
+    return bladder_volume(braid_cosine(contraction, end_correction, cos_rest, eps_max), neutral_diameter, wall,
+                          rest_length, cos_rest, end_correction)
+
+
+_tension_u = broadcast(law(_tension_one), 13)
+_volume_u = broadcast(law(_volume_one), 7)
+_area_u = broadcast(active_area, 6)
+_cos_u = broadcast(braid_cosine, 4)
+
+
+def _geometry(params: "McKibbenParams"):
+    return (params.end_correction, math.cos(params.rest_braid_angle), max_contraction(params))
+
+
 @functools.lru_cache(maxsize=256)
-def _zero_force_cos(params: McKibbenParams) -> float:
+def _zero_force_cos(params: "McKibbenParams") -> float:
     """Braid-angle cosine at which the net area vanishes (the end of contraction)."""
     if params.wall_thickness == 0.0:
         return 1.0 / _SQRT3
     lo, hi = 1e-12, math.cos(params.rest_braid_angle)   # area < 0 at lo, > 0 at hi
+    d0, wall = params.neutral_diameter, params.wall_thickness
     for _ in range(200):
         mid = 0.5 * (lo + hi)
-        if float(_area_at_cos(params, mid)) > 0.0:
+        if pulling_area(mid, d0, wall) > 0.0:
             hi = mid
         else:
             lo = mid
     return 0.5 * (lo + hi)
 
 
-def max_contraction(params: McKibbenParams) -> float:
+def max_contraction(params: "McKibbenParams") -> float:
     """Contraction at which the muscle stops pulling, ``eps_max`` [-].
 
     Ideal case: ``eps_max = 1 - 1 / (sqrt(3) cos(alpha0))`` (derived from Tondu & Lopez 2000,
@@ -60,67 +138,63 @@ def max_contraction(params: McKibbenParams) -> float:
     return (1.0 - _zero_force_cos(params) / c_rest) / params.end_correction
 
 
-def _braid_cos(params: McKibbenParams, contraction):
-    """Cosine of the braid angle; slack (eps < 0) holds the rest shape, eps > eps_max the last."""
-    eps = np.clip(np.asarray(contraction, dtype=float), 0.0, max_contraction(params))
-    return (1.0 - params.end_correction * eps) * math.cos(params.rest_braid_angle)
-
-
-def braid_angle(params: McKibbenParams, contraction):
+def braid_angle(params: "McKibbenParams", contraction):
     """Braid angle ``theta`` [rad] from ``cos(theta) = (1 - k eps) cos(alpha0)`` (Tondu & Lopez 2000)."""
-    return np.arccos(_braid_cos(params, contraction))
+    return np.arccos(_cos_u(contraction, *_geometry(params)))
 
 
-def effective_area(params: McKibbenParams, contraction):
+def effective_area(params: "McKibbenParams", contraction):
     """Force per unit pressure ``-dV/dL`` [m^2]; zero when slack or past ``eps_max``."""
-    eps = np.asarray(contraction, dtype=float)
-    area = _area_at_cos(params, _braid_cos(params, eps))
-    inside = (eps >= 0.0) & (eps <= max_contraction(params))
-    return np.where(inside, np.maximum(area, 0.0), 0.0)
+    return _area_u(contraction, *_geometry(params), params.neutral_diameter, params.wall_thickness)
 
 
-def _volume_at_cos(params: McKibbenParams, c):
-    s = np.sqrt(1.0 - c * c)
-    d_inner = params.neutral_diameter * s - 2.0 * params.wall_thickness
-    l_equiv = params.rest_length * c / math.cos(params.rest_braid_angle)
-    return 0.25 * math.pi * d_inner * d_inner * l_equiv / params.end_correction
+def volume(params: "McKibbenParams", contraction):
+    """Gas volume inside the bladder [m^3] (:func:`bladder_volume`).
 
-
-def volume(params: McKibbenParams, contraction):
-    """Gas volume inside the bladder [m^3].
-
-    ``V = pi (D - 2t)^2 L_e / (4 k)`` with ``L_e = l0 (1 - k eps)`` the length of the equivalent
-    cylinder; with ``k = 1, t = 0`` this is ``pi D^2 L / 4 = L (b^2 - L^2) / (4 pi n^2)``
-    (Chou & Hannaford 1996). The ``1/k`` scaling keeps ``F = -P dV/dL`` exact with the end
-    correction, so pneumatic and mechanical work agree.
+    With ``k = 1, t = 0`` this is ``pi D^2 L / 4 = L (b^2 - L^2) / (4 pi n^2)`` (Chou & Hannaford 1996).
     """
-    return _volume_at_cos(params, _braid_cos(params, contraction))
+    return _volume_u(contraction, *_geometry(params), params.neutral_diameter, params.wall_thickness,
+                     params.rest_length)
 
 
-def net_pressure(params: McKibbenParams, pressure):
+def net_pressure(params: "McKibbenParams", pressure):
     """Gauge pressure left to pull the braid after the bladder threshold [Pa] (never negative)."""
     return np.maximum(np.asarray(pressure, dtype=float) - params.threshold_pressure, 0.0)
 
 
-def static_force(params: McKibbenParams, pressure, contraction):
-    """Static pulling force [N] at gauge ``pressure`` [Pa] and ``contraction`` [-].
+def tension(params: "McKibbenParams", pressure, contraction, contraction_rate):
+    """Force the muscle pulls with [N]: static force less the smooth braid friction, never pushing
+    (:func:`muscle_chamber` with ``g = tanh(rate / friction_rate_scale)``).
+
+    Shortening (positive contraction rate) lowers the tension, lengthening raises it, which is
+    the measured hysteresis loop's sense (Tondu 2012).
+    """
+    return _tension_u(pressure, contraction, contraction_rate, *_geometry(params), params.neutral_diameter,
+                      params.wall_thickness, params.rest_length, params.threshold_pressure,
+                      params.braid_friction * math.pi * params.rest_radius ** 2, params.friction_rate_scale,
+                      params.force_scale)
+
+
+def static_force(params: "McKibbenParams", pressure, contraction):
+    """Static pulling force [N] at gauge ``pressure`` [Pa] and ``contraction`` [-], no friction.
 
     ``F = P (-dV/dL)``: Chou & Hannaford (1996) eq. for the ideal and thick-wall muscle;
     identical to Tondu & Lopez (2000) ``F = pi r0^2 P [a (1 - k eps)^2 - b]`` with
     ``a = 3 / tan^2(alpha0)``, ``b = 1 / sin^2(alpha0)`` when ``t = 0``. Zero when slack
-    (eps < 0), past the maximum contraction, or at zero pressure.
+    (eps < 0), past the maximum contraction, or at zero pressure. The plant's :func:`tension` at
+    zero contraction rate.
     """
-    return net_pressure(params, pressure) * effective_area(params, contraction)
+    return tension(params, pressure, contraction, 0.0)
 
 
-def stiffness(params: McKibbenParams, pressure, contraction):
+def stiffness(params: "McKibbenParams", pressure, contraction):
     """Derivative of the static force with respect to muscle length, ``dF/dL`` [N/m].
 
-    Analytic derivative of :func:`static_force` through ``dc/dL = k cos(alpha0) / l0``;
+    Analytic derivative of :func:`pulling_area` through ``dc/dL = k cos(alpha0) / l0``;
     zero where the force is identically zero (slack, past eps_max).
     """
     eps = np.asarray(contraction, dtype=float)
-    c = _braid_cos(params, eps)
+    c = _cos_u(eps, *_geometry(params))
     s = np.sqrt(1.0 - c * c)
     d0, t = params.neutral_diameter, params.wall_thickness
     darea_dc = 1.5 * math.pi * d0 * d0 * c
@@ -128,46 +202,13 @@ def stiffness(params: McKibbenParams, pressure, contraction):
         darea_dc = darea_dc - math.pi * d0 * t * (2.0 + 1.0 / (s * s)) * c / s
     dc_dl = params.end_correction * math.cos(params.rest_braid_angle) / params.rest_length
     inside = (eps >= 0.0) & (eps <= max_contraction(params))
-    return np.where(inside, net_pressure(params, pressure) * darea_dc * dc_dl, 0.0)
+    return np.where(inside, params.force_scale * net_pressure(params, pressure) * darea_dc * dc_dl, 0.0)
 
 
-def braid_friction_force(params: McKibbenParams, pressure, contraction_rate):
-    """Braid friction [N], signed like the contraction rate; subtract it from the static force.
-
-    Pressure-proportional Coulomb-type friction from thread-on-thread contact (Tondu 2012,
-    J. Intell. Mater. Syst. Struct., review), smoothed as ``tanh(rate / rate_scale)`` so the
-    ODE right-hand side stays Lipschitz: ``f = mu pi r0^2 P tanh(deps/dt / s)``.
-    """
+def braid_friction_force(params: "McKibbenParams", pressure, contraction_rate):
+    """Smooth braid friction [N], signed like the contraction rate (what :func:`tension` subtracts
+    while the muscle pulls): ``f = mu pi r0^2 P_n tanh(deps/dt / s)`` (Tondu 2012, smoothed so the
+    right-hand side stays Lipschitz)."""
     scale = params.braid_friction * math.pi * params.rest_radius ** 2
     rate = np.asarray(contraction_rate, dtype=float) / params.friction_rate_scale
     return scale * net_pressure(params, pressure) * np.tanh(rate)
-
-
-def tension(params: McKibbenParams, pressure, contraction, contraction_rate):
-    """Force the muscle pulls with [N]: static force less braid friction, never pushing.
-
-    Shortening (positive contraction rate) lowers the tension, lengthening raises it, which is
-    the measured hysteresis loop's sense (Tondu 2012).
-    """
-    pulling = effective_area(params, contraction) > 0.0
-    f = static_force(params, pressure, contraction) - braid_friction_force(
-        params, pressure, contraction_rate)
-    return np.where(pulling, params.force_scale * np.maximum(f, 0.0), 0.0)
-
-
-def chamber_terms(params: McKibbenParams, pressure, contraction, contraction_rate):
-    """``(tension, effective_area, volume)`` in one pass, sharing the braid geometry.
-
-    The same equations as :func:`tension`, :func:`effective_area` and :func:`volume`; the plant
-    calls this on its hot path.
-    """
-    eps = np.asarray(contraction, dtype=float)
-    eps_max = max_contraction(params)
-    c = (1.0 - params.end_correction * np.clip(eps, 0.0, eps_max)) * math.cos(params.rest_braid_angle)
-    inside = (eps >= 0.0) & (eps <= eps_max)
-    area = np.where(inside, np.maximum(_area_at_cos(params, c), 0.0), 0.0)
-    p_net = net_pressure(params, pressure)
-    pull = p_net * area - braid_friction_force(params, pressure, contraction_rate)
-    tension_ = np.where(area > 0.0, params.force_scale * np.maximum(pull, 0.0), 0.0)
-    return tension_, area, _volume_at_cos(params, c)
-

@@ -6,6 +6,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from .compiled import law
 from .params import _validate
 
 
@@ -36,64 +37,56 @@ class SensorParams:
                          "rate_noise": (0, 100, "rad/s", False), "pressure_noise": (0, 1e6, "Pa", False),
                          "pressure_lag": (0, 10, "s", False)})
 
+    @property
+    def noise_levels(self) -> np.ndarray:
+        """Noise standard deviations of the channels angle, rate, pressure A, pressure B."""
+        return np.array([self.angle_noise, self.rate_noise, self.pressure_noise, self.pressure_noise])
+
     def pressure_blend(self, dt: float) -> float:
         """Weight of the new sample in the discrete first-order pressure filter."""
         return 1.0 if self.pressure_lag == 0.0 else 1.0 - math.exp(-dt / self.pressure_lag)
 
 
+@law
+def _readings_into(x, filtered, noise, levels, angle_step, blend, y):
+    """Readings of states ``x`` (B, 6) into ``y`` (B, 4); ``filtered`` (B, 2) is updated in place.
+    ``noise`` (B, n) holds standard normals for the noisy channels in the order angle, rate,
+    pressure A, pressure B (only those whose level in ``levels`` is non-zero)."""
+    for i in range(x.shape[0]):
+        col = 0
+        for c in range(4):
+            if c < 2:
+                v = x[i, c]
+            else:
+                filtered[i, c - 2] = filtered[i, c - 2] + blend * (x[i, c] - filtered[i, c - 2])
+                v = filtered[i, c - 2]
+            if levels[c] != 0.0:
+                v = v + levels[c] * noise[i, col]
+                col += 1
+            y[i, c] = v
+        if angle_step > 0.0:
+            y[i, 0] = np.round(y[i, 0] / angle_step) * angle_step
+
+
 def measure(sensors: SensorParams, x, filtered_pressure, rng: np.random.Generator, dt: float):
     """Readings ``[angle, rate, p_a, p_b]`` of state(s) ``x`` (..., 6) and the new pressure filter
-    state (..., 2). Noise is drawn from ``rng`` only where its level is non-zero, so a noiseless
-    sensor leaves the generator untouched."""
+    state (..., 2): encoder noise then quantisation (step 2 pi / counts), rate noise, pressure
+    sensors as a discrete first-order lag plus noise (common practice).
+
+    Noise comes from one ``rng.standard_normal((members, n))`` call, ``n`` the number of noisy
+    channels (angle, rate, pressure A, pressure B, each only where its level is non-zero), member
+    by member; a noiseless sensor leaves the generator untouched."""
     x = np.asarray(x, dtype=float)
-    blend = sensors.pressure_blend(dt)
-    pressures = filtered_pressure + blend * (x[..., 2:4] - filtered_pressure)
-    y = np.empty(x.shape[:-1] + (4,))
-    y[..., 0] = x[..., 0]
-    y[..., 1] = x[..., 1]
-    y[..., 2:4] = pressures
-    if sensors.angle_noise:
-        y[..., 0] += sensors.angle_noise * rng.standard_normal(x.shape[:-1])
-    if sensors.angle_counts:
-        step = 2.0 * math.pi / sensors.angle_counts
-        y[..., 0] = np.round(y[..., 0] / step) * step
-    if sensors.rate_noise:
-        y[..., 1] += sensors.rate_noise * rng.standard_normal(x.shape[:-1])
-    if sensors.pressure_noise:
-        y[..., 2:4] += sensors.pressure_noise * rng.standard_normal(x.shape[:-1] + (2,))
-    return y, pressures
+    lead = x.shape[:-1]
+    xs = np.ascontiguousarray(x.reshape(-1, 6))
+    filt = np.array(np.broadcast_to(np.asarray(filtered_pressure, dtype=float), lead + (2,))).reshape(-1, 2)
+    levels = sensors.noise_levels
+    n_noisy = int(np.count_nonzero(levels))
+    noise = rng.standard_normal((xs.shape[0], n_noisy)) if n_noisy else _NO_NOISE
+    y = np.empty((xs.shape[0], 4))
+    step = 2.0 * math.pi / sensors.angle_counts if sensors.angle_counts else 0.0
+    _readings_into(xs, filt, noise, levels, step, sensors.pressure_blend(dt), y)
+    return y.reshape(lead + (4,)), filt.reshape(lead + (2,))
 
 
-def measure_f(sensors: SensorParams, x, filtered_pressure, rng: np.random.Generator, dt: float):
-    """Python-float twin of :func:`measure` for one state (same equations, no numpy arrays).
-
-    Draws the same random numbers in the same order as :func:`measure` with a batch of one
-    (angle, rate, pressure A, pressure B, each only where its level is non-zero), in one call:
-    a Generator's normals come out the same drawn together or one by one."""
-    blend = sensors.pressure_blend(dt)
-    f0, f1 = filtered_pressure
-    fa = f0 + blend * (x[2] - f0)
-    fb = f1 + blend * (x[3] - f1)
-    angle, rate = x[0], x[1]
-    angle_noise, rate_noise, pressure_noise = sensors.angle_noise, sensors.rate_noise, sensors.pressure_noise
-    if angle_noise and rate_noise and pressure_noise:          # the usual case: every sensor noisy
-        za, zr, z1, z2 = rng.standard_normal(4).tolist()
-        angle += angle_noise * za
-        rate += rate_noise * zr
-        pa, pb = fa + pressure_noise * z1, fb + pressure_noise * z2
-    else:
-        pa, pb = fa, fb
-        if angle_noise or rate_noise or pressure_noise:
-            z = rng.standard_normal((angle_noise != 0.0) + (rate_noise != 0.0) + 2 * (pressure_noise != 0.0))
-            z = z.tolist()
-            if angle_noise:
-                angle += angle_noise * z.pop(0)
-            if rate_noise:
-                rate += rate_noise * z.pop(0)
-            if pressure_noise:
-                pa += pressure_noise * z[0]
-                pb += pressure_noise * z[1]
-    if sensors.angle_counts:
-        step = 2.0 * math.pi / sensors.angle_counts
-        angle = round(angle / step) * step
-    return [angle, rate, pa, pb], (fa, fb)
+_NO_NOISE = np.zeros((1, 0))

@@ -1,7 +1,8 @@
 """One strike trial on the simulated plant: plant + sensors + drift + task, stepped by commands.
 
-The scalar environment, the vector environment and the command-line runs all use this core, so a
-trial means the same thing everywhere. ``batch=None`` runs one joint on Python floats.
+The scalar environment and the command-line runs step trials through :class:`StrikeTrial`; the
+vector environment steps the same compiled :class:`~muscle_sim.integrate.Stepper` and sensor
+models over a batch.
 """
 from __future__ import annotations
 
@@ -15,7 +16,7 @@ from .integrate import Stepper
 from .params import PlantParams
 from .plant import holding_pressures, initial_state
 from .records import Rollout
-from .sensors import SensorParams, measure, measure_f
+from .sensors import SensorParams, measure
 from .tasks import StrikeTask, reference
 
 
@@ -54,14 +55,13 @@ def home_pressures(params: PlantParams, task: StrikeTask):
 
 
 class StrikeTrial:
-    """Steps one trial (or a batch of identical-config trials) and records it."""
+    """Steps one trial and records it."""
 
-    def __init__(self, setup: Setup, batch: int | None = None):
+    def __init__(self, setup: Setup):
         self.setup = setup
-        self.batch = batch
         self.task = setup.task
         self.params = setup.plant
-        self.stepper = Stepper(setup.plant, setup.task.dt, setup.task.n_substeps, batch)
+        self.stepper = Stepper(setup.plant, setup.task.dt, setup.task.n_substeps)
         self.trial_index = 0
 
     def start(self, rng: np.random.Generator, trial: int = 0):
@@ -69,27 +69,20 @@ class StrikeTrial:
         first readings [angle, rate, p_a, p_b]."""
         self.trial_index = trial
         self.params = drifted(self.setup.plant, self.setup.drift, trial, rng)
-        if self.params is not self.setup.plant:
-            self.stepper = Stepper(self.params, self.task.dt, self.task.n_substeps, self.batch)
+        if self.params is not self.stepper.params:
+            self.stepper = Stepper(self.params, self.task.dt, self.task.n_substeps)
         self.rng = rng
         p_hold = home_pressures(self.params, self.task)
         self.u_hold = np.array(p_hold)
-        x0 = initial_state(self.params, self.task.home_angle, p_hold, self.batch)
-        self.stepper.reset(x0, p_hold)
+        self.stepper.reset(initial_state(self.params, self.task.home_angle, p_hold), p_hold)
         self.k = 0
-        self._filter = tuple(p_hold) if self.batch is None else np.tile(np.array(p_hold), (self.batch, 1))
+        self._filter = np.array(p_hold)
         y = self._measure(self.stepper.x)
-        self._log_x, self._log_y, self._log_u = [self._copy(self.stepper.x)], [y], []
+        self._log_x, self._log_y, self._log_u = [self.stepper.x.copy()], [y], []
         return y
 
-    def _copy(self, x):
-        return list(x) if self.batch is None else x.copy()
-
     def _measure(self, x):
-        if self.batch is None:
-            y, self._filter = measure_f(self.setup.sensors, x, self._filter, self.rng, self.task.dt)
-        else:
-            y, self._filter = measure(self.setup.sensors, x, self._filter, self.rng, self.task.dt)
+        y, self._filter = measure(self.setup.sensors, x, self._filter, self.rng, self.task.dt)
         return y
 
     def advance(self, command):
@@ -97,9 +90,9 @@ class StrikeTrial:
         x = self.stepper.step(command)
         self.k += 1
         y = self._measure(x)
-        self._log_x.append(self._copy(x))
+        self._log_x.append(x.copy())
         self._log_y.append(y)
-        self._log_u.append(tuple(command) if self.batch is None else np.array(command, dtype=float))
+        self._log_u.append(tuple(command))
         return y
 
     @property
@@ -113,9 +106,7 @@ class StrikeTrial:
         return self.k >= self.task.n_steps
 
     def rollout(self, controller: str = "", seed=None) -> Rollout:
-        """The recorded (single) trial as a :class:`~muscle_sim.records.Rollout`."""
-        if self.batch is not None:
-            raise ValueError("rollout: only a single trial (batch=None) is recorded as a Rollout")
+        """The recorded trial as a :class:`~muscle_sim.records.Rollout`."""
         t = np.arange(len(self._log_y)) * self.task.dt
         u = np.array(self._log_u + self._log_u[-1:] if self._log_u else [tuple(self.u_hold)], dtype=float)
         ref, _, _ = reference(self.task, t)
@@ -124,4 +115,3 @@ class StrikeTrial:
                 "supply_pressure_kpa": self.params.pneumatics.supply_pressure / 1e3}
         return Rollout(t=t, measured=np.array(self._log_y, dtype=float), command=u,
                        true_state=np.array(self._log_x, dtype=float), reference=ref, metadata=meta)
-

@@ -162,28 +162,15 @@ STRIKE_SPEED_WEIGHT = 1.0
 FAULT_PENALTY = 100.0
 
 
-def step_reward_f(task: StrikeTask, k: int, angle: float, rate: float, ref_angle: float) -> float:
-    """Python-float twin of :func:`step_reward` given the reference angle at step ``k``."""
-    err_deg = (angle - ref_angle) * (180.0 / math.pi)
-    r = -TRACK_WEIGHT * err_deg * err_deg / task.n_steps
-    if k == task.strike_index:
-        speed_pct = 100.0 * (rate - task.strike_speed) / task.strike_speed
-        r -= STRIKE_ANGLE_WEIGHT * err_deg * err_deg + STRIKE_SPEED_WEIGHT * (speed_pct / 10.0) ** 2
-    return r
-
-
-def step_reward(task: StrikeTask, k, angle, rate):
-    """Reward of the sample at step ``k`` (batched over arrays).
+def step_reward(task: StrikeTask, k, angle, rate, ref_angle):
+    """Reward of the sample at step ``k`` given the reference angle there (floats or arrays).
 
     ``-TRACK (e/1deg)^2 / N`` every step, so the trial's tracking part sums to minus the mean
     squared error in deg^2; at the strike step additionally ``-(angle error/1 deg)^2
     - (speed error/10 %)^2``.
     """
-    k = np.asarray(k)
-    ref, _, _ = reference(task, k * task.dt)
-    err_deg = np.degrees(np.asarray(angle) - ref)
-    r = -TRACK_WEIGHT * err_deg ** 2 / task.n_steps
+    err_deg = (angle - ref_angle) * (180.0 / math.pi)
+    r = -TRACK_WEIGHT * err_deg * err_deg / task.n_steps
     at_strike = k == task.strike_index
-    speed_pct = 100.0 * (np.asarray(rate) - task.strike_speed) / task.strike_speed
-    r = r - at_strike * (STRIKE_ANGLE_WEIGHT * err_deg ** 2 + STRIKE_SPEED_WEIGHT * (speed_pct / 10.0) ** 2)
-    return r
+    speed_pct = 100.0 * (rate - task.strike_speed) / task.strike_speed
+    return r - at_strike * (STRIKE_ANGLE_WEIGHT * err_deg * err_deg + STRIKE_SPEED_WEIGHT * (speed_pct / 10.0) ** 2)

@@ -150,7 +150,7 @@ class FlipperStrikeVectorEnv(VectorEnv):
         self._k += live
         y, self._filter = measure(self.setup.sensors, x, self._filter, self.np_random, task.dt)
         self._accumulate(y, live)
-        reward = step_reward(task, self._k, y[:, 0], y[:, 1])
+        reward = step_reward(task, self._k, y[:, 0], y[:, 1], self._ref[np.minimum(self._k, task.n_steps)])
         q = x[:, 0]
         terminated = live & ((q < self._fault_band[0]) | (q > self._fault_band[1]))
         truncated = live & ~terminated & (self._k >= self.max_steps)

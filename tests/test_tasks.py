@@ -4,7 +4,7 @@ import math
 import numpy as np
 import pytest
 
-from muscle_sim.tasks import StrikeTask, reference, step_reward, step_reward_f, strike_metrics
+from muscle_sim.tasks import StrikeTask, reference, step_reward, strike_metrics
 
 
 def demo_task():
@@ -63,13 +63,19 @@ def test_metrics_see_an_offset_and_a_late_settle():
     assert not m["settled"]
 
 
-def test_reward_twins_agree():
+def test_reward_sums_to_minus_the_mean_squared_error_plus_the_strike_terms():
+    # Derived from the reward's definition: the per-step tracking terms sum to minus the mean of
+    # the squared error in deg^2 over the trial's N steps; the strike step adds (angle error in
+    # deg)^2 + (speed error / 10 %)^2. The same function serves floats and arrays; rel 1e-12.
     task = demo_task()
-    k = np.arange(task.n_steps + 1)
+    k = np.arange(1, task.n_steps + 1)
     ref = reference(task, k * task.dt)[0]
     angle = ref + 0.01 * np.sin(k)
     rate = np.full(k.shape, 11.0)
-    batched = step_reward(task, k, angle, rate)
-    scalar = [step_reward_f(task, int(i), float(a), 11.0, float(r)) for i, a, r in zip(k, angle, ref)]
+    batched = step_reward(task, k, angle, rate, ref)
+    err = np.degrees(angle - ref)
+    i = task.strike_index - 1
+    strike = err[i] ** 2 + (100.0 * (11.0 - task.strike_speed) / task.strike_speed / 10.0) ** 2
+    assert batched.sum() == pytest.approx(-np.mean(err ** 2) - strike, rel=1e-12)
+    scalar = [step_reward(task, int(j), float(a), 11.0, float(r)) for j, a, r in zip(k, angle, ref)]
     np.testing.assert_allclose(batched, scalar, rtol=1e-12)
-    assert batched[task.strike_index] < batched[task.strike_index + 1]   # the strike is weighed extra
