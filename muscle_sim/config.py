@@ -67,6 +67,11 @@ MUSCLE_KEYS = _section(
                        high=1.0),
     friction_rate_scale=Key("rate", "contraction rate that smooths the friction sign", default=0.05, low=0,
                             low_open=True),
+    friction_model=Key("str", "braid friction law: tanh (smoothed Coulomb) or maxwell-slip (hysteresis "
+                       "elements); the prior always uses tanh", default="tanh", choices=("tanh", "maxwell-slip")),
+    friction_elements=Key("int", "number of Maxwell-slip elements", default=8, low=1, high=64),
+    slip_length=Key("length", "braid stretch after which the full Maxwell-slip friction has developed",
+                    default=1e-3, low=0, low_open=True, unit="mm"),
 )
 
 MUSCLE_MAP_KEYS = _section(
@@ -150,7 +155,8 @@ DRIFT_KEYS = _section(
 )
 
 PRIOR_KEYS = _section(
-    muscle_model=Key("str", "ideal (no wall, no end effect, no friction) or plant (the plant's muscle)",
+    muscle_model=Key("str", "ideal (no wall, no end effect, no friction) or plant (the plant's muscle, "
+                     "its braid friction as the tanh law)",
                      default="ideal", choices=("ideal", "plant")),
     end_correction=Key("dimensionless", "end correction the prior assumes (null: that of muscle_model)",
                        default=None, low=1.0, high=10.0),
@@ -457,6 +463,8 @@ def prior_params(cfg: Config) -> PlantParams:
     """The model the controllers believe, derived from ``plant`` by the ``prior`` section."""
     pr = cfg.get("prior")
     muscle = muscle_params(cfg)
+    # the prior never models braid hysteresis: a plant's Maxwell-slip friction becomes the tanh law
+    muscle = replace(muscle, friction_model="tanh")
     if pr["muscle_model"] == "ideal":
         muscle = replace(muscle, wall_thickness=0.0, end_correction=1.0, threshold_pressure=0.0,
                          braid_friction=0.0)

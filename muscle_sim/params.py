@@ -2,6 +2,7 @@
 from __future__ import annotations
 
 import math
+import numbers
 from dataclasses import dataclass, fields
 
 from .errors import ParameterError
@@ -9,6 +10,10 @@ from .errors import ParameterError
 #: Braid angle at which an ideal McKibben muscle gives no force, arccos(1/sqrt(3)) [rad]
 #: (Chou & Hannaford 1996; Tondu & Lopez 2000).
 NEUTRAL_BRAID_ANGLE = math.acos(1.0 / math.sqrt(3.0))
+
+#: Braid friction laws of a muscle: the tanh-smoothed Coulomb law (Tondu 2012) or Maxwell-slip
+#: elements (Vo-Minh et al. 2011, :mod:`muscle_sim.hysteresis`).
+FRICTION_MODELS = ("tanh", "maxwell-slip")
 
 
 def _fail(owner: str, name: str, value, allowed: str, unit: str = "") -> None:
@@ -71,6 +76,15 @@ class McKibbenParams:
         Multiplier on the pulling force [-]: 1 for the model as written; a prior identified from
         trials uses it to absorb a force-model error (measured McKibben forces fall short of the
         inelastic-braid law, e.g. Tondu & Lopez 2000, Fig. 6).
+    friction_model : str
+        ``"tanh"``: braid friction as a smoothed Coulomb force against the contraction rate;
+        ``"maxwell-slip"``: as Maxwell-slip elements, a rate-independent hysteresis loop of the
+        same level ``braid_friction * pi r0^2 P`` (:mod:`muscle_sim.hysteresis`).
+    friction_elements : int
+        Number of Maxwell-slip elements ``M`` (1..64) [-].
+    slip_length : float
+        Stretch of the braid after which the full Maxwell-slip friction has developed; element i
+        breaks away at ``slip_length * i / M`` [m].
     """
 
     rest_length: float
@@ -83,10 +97,20 @@ class McKibbenParams:
     braid_friction: float = 0.0
     friction_rate_scale: float = 0.05
     force_scale: float = 1.0
+    friction_model: str = "tanh"
+    friction_elements: int = 8
+    slip_length: float = 1e-3
 
     def __post_init__(self) -> None:
         own = type(self).__name__
+        if self.friction_model not in FRICTION_MODELS:
+            _fail(own, "friction_model", self.friction_model, "one of " + ", ".join(FRICTION_MODELS))
+        n = self.friction_elements
+        if isinstance(n, bool) or not isinstance(n, numbers.Integral) or not 1 <= n <= 64:
+            _fail(own, "friction_elements", n, "a whole number in [1, 64]")
         for f in fields(self):
+            if f.name in ("friction_model", "friction_elements"):
+                continue
             value = getattr(self, f.name)
             if isinstance(value, bool) or not isinstance(value, (int, float)):
                 _fail(own, f.name, value, "a number")
@@ -103,6 +127,9 @@ class McKibbenParams:
         check_range(own, "braid_friction", self.braid_friction, 0.0, 1.0)
         check_positive(own, "friction_rate_scale", self.friction_rate_scale, "1/s")
         check_range(own, "force_scale", self.force_scale, 0.05, 20.0)
+        check_positive(own, "slip_length", self.slip_length, "m")
+        if self.slip_length > self.rest_length:
+            _fail(own, "slip_length", self.slip_length, f"<= rest_length ({self.rest_length:g} m)", "m")
         # the braid widens as it contracts, so a wall thinner than r0 fits at every contraction;
         # but the wall must leave a pulling area at rest (Chou & Hannaford 1996 thick-wall form)
         c, s = math.cos(self.rest_braid_angle), math.sin(self.rest_braid_angle)

@@ -60,6 +60,14 @@ def test_unknown_key_gets_a_did_you_mean():
     ("rest_braid_angle", "60 deg", "must be > 0 deg and < 54.7356 deg"),
     ("end_correction", 0.8, ">= 1"),
     ("wall_thickness", "8 mm", "wall_thickness"),
+    ("friction_model", "bouc-wen", "one of tanh, maxwell-slip"),
+    ("friction_model", 3, "must be text"),
+    ("friction_elements", 0, ">= 1"),
+    ("friction_elements", 65, "<= 64"),
+    ("friction_elements", 8.5, "whole number"),
+    ("slip_length", "0 mm", "must be > 0 mm"),
+    ("slip_length", 1, "has no unit"),
+    ("slip_length", "300 mm", "<= rest_length (0.25 m)"),
 ])
 def test_bad_values_are_one_line_with_path(key, value, expect):
     raw = demo_raw()
@@ -67,6 +75,25 @@ def test_bad_values_are_one_line_with_path(key, value, expect):
     msg = _error(raw)
     assert msg.startswith(f"plant.muscle.{key}:")
     assert expect in msg
+
+
+@pytest.mark.parametrize("muscle_model", ["ideal", "plant"])
+def test_prior_never_models_braid_hysteresis(muscle_model):
+    # The plant may use Maxwell-slip braid friction; the prior keeps the simple tanh law (and with
+    # muscle_model: plant the same friction level).
+    raw = demo_raw()
+    raw["plant"]["muscle"]["friction_model"] = "maxwell-slip"
+    raw["plant"]["muscle"]["slip_length"] = "0.5 mm"
+    raw["prior"]["muscle_model"] = muscle_model
+    cfg = config.load(raw)
+    plant, prior = config.plant_params(cfg).muscle, config.prior_params(cfg).muscle
+    assert (plant.friction_model, plant.slip_length) == ("maxwell-slip", pytest.approx(5e-4))
+    assert prior.friction_model == "tanh"
+    assert prior.braid_friction == (plant.braid_friction if muscle_model == "plant" else 0.0)
+
+
+def test_demo_keeps_the_tanh_braid_friction():
+    assert config.muscle_params(config.load(DEMO)).friction_model == "tanh"
 
 
 def test_missing_required_key():
