@@ -8,9 +8,10 @@ import gymnasium as gym
 import numpy as np
 from gymnasium import spaces
 
+from .compiled import law
 from .errors import SimulationDiverged
 from .simulation import Setup, StrikeTrial
-from .tasks import FAULT_PENALTY, reference, step_reward, strike_metrics
+from .tasks import FAULT_PENALTY, reference, reward_at, strike_metrics
 
 DEMO_CONFIG = Path(__file__).resolve().parent.parent / "configs" / "flipper.yaml"
 RATE_BOUND = 60.0  # rad/s, observation bound of the angular rate
@@ -23,6 +24,15 @@ def observation_bounds(setup: Setup):
     low = np.array([-math.pi, -RATE_BOUND, 0.0, 0.0, setup.task.strike_time - span], dtype=np.float32)
     high = np.array([math.pi, RATE_BOUND, top, top, setup.task.strike_time], dtype=np.float32)
     return low, high
+
+
+@law
+def observation_into(readings, time_to_strike, low, high, out):
+    """Observation ``[angle, rate, p_a, p_b, time to strike]`` clipped to the space's bounds
+    into ``out`` (float32)."""
+    for c in range(5):
+        v = readings[c] if c < 4 else time_to_strike
+        out[c] = min(max(v, low[c]), high[c])
 
 
 def check_action(action, shape_tail=(2,)):
@@ -108,18 +118,20 @@ class FlipperStrikeEnv(gym.Env):
         self.action_space = spaces.Box(-1.0, 1.0, (2,), dtype=np.float32)
         low, high = observation_bounds(self.setup)
         self.observation_space = spaces.Box(low, high, dtype=np.float32)
+        self._low, self._high = low.astype(float), high.astype(float)
+        self._half_range = 0.5 * self.setup.rated_pressure
         self.trial = StrikeTrial(self.setup)
         self._episode = -1
         self._started = False
         self._ref = reference(self.setup.task, self.setup.task.times)[0].tolist()
-        self._bounds = list(zip(low.astype(float).tolist(), high.astype(float).tolist()))
         j = self.setup.plant.joint
         self._fault_band = (j.lower_stop - self.setup.task.fault_depth, j.upper_stop + self.setup.task.fault_depth)
 
     def _obs(self, y) -> np.ndarray:
-        t_to_strike = self.setup.task.strike_time - self.trial.k * self.setup.task.dt
-        values = (y[0], y[1], y[2], y[3], t_to_strike)
-        return np.array([min(max(v, lo), hi) for v, (lo, hi) in zip(values, self._bounds)], dtype=np.float32)
+        obs = np.empty(5, dtype=np.float32)
+        observation_into(y, self.setup.task.strike_time - self.trial.k * self.setup.task.dt, self._low,
+                         self._high, obs)
+        return obs
 
     def reset(self, *, seed=None, options=None):
         super().reset(seed=seed)
@@ -140,7 +152,7 @@ class FlipperStrikeEnv(gym.Env):
         a0, a1 = _action_pair(action)
         c0, c1 = min(max(a0, -1.0), 1.0), min(max(a1, -1.0), 1.0)
         self._clipped += (c0 != a0) + (c1 != a1)
-        half = 0.5 * self.setup.rated_pressure
+        half = self._half_range
         command = ((c0 + 1.0) * half, (c1 + 1.0) * half)
         task = self.setup.task
         info = {"trial": self._episode, "clipped_actions": self._clipped}
@@ -149,17 +161,17 @@ class FlipperStrikeEnv(gym.Env):
         except SimulationDiverged as exc:
             self._started = False
             info["fault"] = f"diverged: {exc}"
-            return self._obs(self.trial._log_y[-1]), -FAULT_PENALTY, True, False, info
+            return self._obs(self.trial.readings[-1]), -FAULT_PENALTY, True, False, info
         k = self.trial.k
-        reward = float(step_reward(task, k, y[0], y[1], self._ref[k]))
-        q = self.trial.state[0]
+        reward = reward_at(k, y[0], y[1], self._ref[k], task.n_steps, task.strike_index, task.strike_speed)
+        q = self.trial.stepper._x[0, 0]
         terminated = not (self._fault_band[0] <= q <= self._fault_band[1])
         truncated = bool(self.trial.done and not terminated)
         if terminated:
             reward -= FAULT_PENALTY
             info["fault"] = "end stop struck deeper than task.fault_depth"
         if terminated or truncated:
-            log = np.array(self.trial._log_y)
+            log = self.trial.readings
             info["metrics"] = strike_metrics(task, log[:, 0], log[:, 1], log[:, 2:4])
             self._started = False
         return self._obs(y), reward, terminated, truncated, info

@@ -15,7 +15,8 @@ import numpy as np
 from .compiled import law
 from .errors import ParameterError, SimulationDiverged
 from .params import PlantParams
-from .plant import N_STATE, pack, plant_rate, rhs
+from .hysteresis import breakaways, engagement, update, weights as slip_weights
+from .plant import K_PULLEY, N_STATE, pack, plant_rate, rhs
 
 #: Angle and rate magnitudes past which a state counts as diverged [rad], [rad/s].
 ANGLE_LIMIT = 20.0
@@ -50,16 +51,17 @@ def command_slots(n_delay: int, n_substeps: int) -> np.ndarray:
 
 
 @law
-def _rk4(x, ua, ub, h, P):
-    """One classical RK4 step of :func:`~muscle_sim.plant.plant_rate` from the 6-tuple ``x``."""
+def _rk4(x, ua, ub, h, P, slip_a, slip_b):
+    """One classical RK4 step of :func:`~muscle_sim.plant.plant_rate` from the 6-tuple ``x``
+    (Maxwell-slip engagements ``slip_a, slip_b`` held over the step)."""
     hh = 0.5 * h
-    a = plant_rate(x[0], x[1], x[2], x[3], x[4], x[5], ua, ub, 0.0, 0.0, P)
+    a = plant_rate(x[0], x[1], x[2], x[3], x[4], x[5], ua, ub, slip_a, slip_b, P)
     b = plant_rate(x[0] + hh * a[0], x[1] + hh * a[1], x[2] + hh * a[2], x[3] + hh * a[3], x[4] + hh * a[4],
-                   x[5] + hh * a[5], ua, ub, 0.0, 0.0, P)
+                   x[5] + hh * a[5], ua, ub, slip_a, slip_b, P)
     c = plant_rate(x[0] + hh * b[0], x[1] + hh * b[1], x[2] + hh * b[2], x[3] + hh * b[3], x[4] + hh * b[4],
-                   x[5] + hh * b[5], ua, ub, 0.0, 0.0, P)
+                   x[5] + hh * b[5], ua, ub, slip_a, slip_b, P)
     d = plant_rate(x[0] + h * c[0], x[1] + h * c[1], x[2] + h * c[2], x[3] + h * c[3], x[4] + h * c[4],
-                   x[5] + h * c[5], ua, ub, 0.0, 0.0, P)
+                   x[5] + h * c[5], ua, ub, slip_a, slip_b, P)
     h6 = h / 6.0
     return (x[0] + h6 * (a[0] + 2.0 * (b[0] + c[0]) + d[0]), x[1] + h6 * (a[1] + 2.0 * (b[1] + c[1]) + d[1]),
             x[2] + h6 * (a[2] + 2.0 * (b[2] + c[2]) + d[2]), x[3] + h6 * (a[3] + 2.0 * (b[3] + c[3]) + d[3]),
@@ -69,19 +71,23 @@ def _rk4(x, ua, ub, h, P):
 @law
 def _rk4_into(x, u, P, h, out):
     for i in range(x.shape[0]):
-        r = _rk4((x[i, 0], x[i, 1], x[i, 2], x[i, 3], x[i, 4], x[i, 5]), u[i, 0], u[i, 1], h, P)
+        r = _rk4((x[i, 0], x[i, 1], x[i, 2], x[i, 3], x[i, 4], x[i, 5]), u[i, 0], u[i, 1], h, P, 0.0, 0.0)
         for k in range(N_STATE):
             out[i, k] = r[k]
 
 
 @law
-def advance_batch(x, history, command, slots, rows, h):
+def advance_batch(x, history, command, slots, rows, h, slip, breakaway, weights):
     """Advance every member of ``x`` (B, 6) by one control step, in place.
 
     ``history`` (D, B, 2) holds the last D commands, oldest first; ``command`` (B, 2) is this
     step's, pushed in first; sub-step j uses ``history[D - 1 - slots[j]]``. ``rows`` (1 or B,
-    N_PACKED) are the parameter rows. Returns the index of the first member that left the
-    physical range (non-finite, |angle| >= ANGLE_LIMIT or |rate| >= RATE_LIMIT), or -1.
+    N_PACKED) are the parameter rows. ``slip`` (B, 2, M) are the Maxwell-slip element states of
+    both muscles (M = 0 without hysteresis), with ``breakaway`` and ``weights`` (M,): their
+    engagement is held over each RK4 sub-step, then the elements follow the muscles' length
+    change ``dL_a = -r_p dq``, ``dL_b = +r_p dq`` (operator splitting). Returns the index of the
+    first member that left the physical range (non-finite, |angle| >= ANGLE_LIMIT or |rate| >=
+    RATE_LIMIT), or -1.
     """
     depth, n = history.shape[0], x.shape[0]
     for i in range(n):
@@ -94,9 +100,18 @@ def advance_batch(x, history, command, slots, rows, h):
     for i in range(n):
         P = rows[i if rows.shape[0] > 1 else 0]
         s = (x[i, 0], x[i, 1], x[i, 2], x[i, 3], x[i, 4], x[i, 5])
+        hysteresis = breakaway.shape[0] > 0
+        rp = P[K_PULLEY]
         for j in range(slots.shape[0]):
             src = depth - 1 - slots[j]
-            s = _rk4(s, history[src, i, 0], history[src, i, 1], h, P)
+            if hysteresis:
+                q_before = s[0]
+                s = _rk4(s, history[src, i, 0], history[src, i, 1], h, P, engagement(slip[i, 0], breakaway, weights),
+                         engagement(slip[i, 1], breakaway, weights))
+                update(slip[i, 0], -rp * (s[0] - q_before), breakaway)
+                update(slip[i, 1], rp * (s[0] - q_before), breakaway)
+            else:
+                s = _rk4(s, history[src, i, 0], history[src, i, 1], h, P, 0.0, 0.0)
         for k in range(N_STATE):
             x[i, k] = s[k]
         finite = True
@@ -143,6 +158,14 @@ class Stepper:
         if any(delay_substeps(p, control_dt, self.n_substeps) != self.n_delay for p in members):
             raise ValueError("params: members with different command delays cannot share one stepper")
         self._rows = np.ascontiguousarray(np.stack([pack(p) for p in members]))
+        m = self.params.muscle
+        if any((p.muscle.friction_model, p.muscle.friction_elements, p.muscle.slip_length)
+               != (m.friction_model, m.friction_elements, m.slip_length) for p in members):
+            raise ValueError("params: members with different braid friction models cannot share one stepper")
+        n_slip = m.friction_elements if m.friction_model == "maxwell-slip" else 0
+        self._breakaway = breakaways(n_slip, m.slip_length) if n_slip else np.zeros(0)
+        self._slip_weights = slip_weights(n_slip) if n_slip else np.zeros(0)
+        self._slip = np.zeros((self._n, 2, n_slip))
         self._slots = command_slots(self.n_delay, self.n_substeps)
         self._depth = int(self._slots.max()) + 1
         self._x = np.zeros((self._n, N_STATE))
@@ -159,6 +182,7 @@ class Stepper:
         """Start from state ``x0``; ``u_before`` is the command assumed before ``t0``."""
         self._x[...] = np.asarray(x0, dtype=float).reshape(-1, N_STATE)
         self._history[...] = 0.0 if u_before is None else np.asarray(u_before, dtype=float).reshape(-1, 2)
+        self._slip[...] = 0.0          # braid elements start unloaded (the virgin state)
         self.t = float(t0)
         self.k = 0
 
@@ -168,12 +192,14 @@ class Stepper:
         mask = np.asarray(mask, dtype=bool)
         self._x[mask] = x0
         self._history[:, mask] = u_before
+        self._slip[mask] = 0.0
 
     def step(self, u):
         """Advance one control step with command ``u`` [Pa] ((2,) or (batch, 2)); returns the new
         state (the stepper's own array: copy it to keep it)."""
         self._command[...] = u
-        bad = advance_batch(self._x, self._history, self._command, self._slots, self._rows, self.h)
+        bad = advance_batch(self._x, self._history, self._command, self._slots, self._rows, self.h, self._slip,
+                            self._breakaway, self._slip_weights)
         self.k += 1
         self.t = self.k * self.control_dt
         if bad >= 0:

@@ -68,25 +68,40 @@ def _readings_into(x, filtered, noise, levels, angle_step, blend, y):
             y[i, 0] = np.round(y[i, 0] / angle_step) * angle_step
 
 
+class SensorModel:
+    """The sensors of ``members`` joints, stepped in place: the pressure filters' state and
+    buffers are kept between calls, so one reading costs one compiled call (and one draw of
+    normals). :func:`measure` is the same model as a pure function."""
+
+    def __init__(self, sensors: SensorParams, dt: float, members: int = 1):
+        self.sensors = sensors
+        self.levels = sensors.noise_levels
+        self.n_noisy = int(np.count_nonzero(self.levels))
+        self.angle_step = 2.0 * math.pi / sensors.angle_counts if sensors.angle_counts else 0.0
+        self.blend = sensors.pressure_blend(dt)
+        self.filtered = np.zeros((members, 2))
+        self._noise = np.empty((members, self.n_noisy))
+
+    def read(self, x, rng: np.random.Generator, out):
+        """Readings of states ``x`` (members, 6) into ``out`` (members, 4); advances the filters.
+        Normals come from one ``rng.standard_normal((members, n))`` draw, ``n`` the number of
+        noisy channels (angle, rate, pressure A, pressure B, each only where its level is
+        non-zero), member by member; a noiseless sensor leaves the generator untouched."""
+        if self.n_noisy:
+            rng.standard_normal(out=self._noise)
+        _readings_into(x, self.filtered, self._noise, self.levels, self.angle_step, self.blend, out)
+        return out
+
+
 def measure(sensors: SensorParams, x, filtered_pressure, rng: np.random.Generator, dt: float):
     """Readings ``[angle, rate, p_a, p_b]`` of state(s) ``x`` (..., 6) and the new pressure filter
     state (..., 2): encoder noise then quantisation (step 2 pi / counts), rate noise, pressure
-    sensors as a discrete first-order lag plus noise (common practice).
-
-    Noise comes from one ``rng.standard_normal((members, n))`` call, ``n`` the number of noisy
-    channels (angle, rate, pressure A, pressure B, each only where its level is non-zero), member
-    by member; a noiseless sensor leaves the generator untouched."""
+    sensors as a discrete first-order lag plus noise (common practice); the pure-function face
+    of :class:`SensorModel`."""
     x = np.asarray(x, dtype=float)
     lead = x.shape[:-1]
     xs = np.ascontiguousarray(x.reshape(-1, 6))
-    filt = np.array(np.broadcast_to(np.asarray(filtered_pressure, dtype=float), lead + (2,))).reshape(-1, 2)
-    levels = sensors.noise_levels
-    n_noisy = int(np.count_nonzero(levels))
-    noise = rng.standard_normal((xs.shape[0], n_noisy)) if n_noisy else _NO_NOISE
-    y = np.empty((xs.shape[0], 4))
-    step = 2.0 * math.pi / sensors.angle_counts if sensors.angle_counts else 0.0
-    _readings_into(xs, filt, noise, levels, step, sensors.pressure_blend(dt), y)
-    return y.reshape(lead + (4,)), filt.reshape(lead + (2,))
-
-
-_NO_NOISE = np.zeros((1, 0))
+    model = SensorModel(sensors, dt, xs.shape[0])
+    model.filtered[...] = np.broadcast_to(np.asarray(filtered_pressure, dtype=float), lead + (2,)).reshape(-1, 2)
+    y = model.read(xs, rng, np.empty((xs.shape[0], 4)))
+    return y.reshape(lead + (4,)), model.filtered.reshape(lead + (2,))

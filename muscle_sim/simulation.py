@@ -16,7 +16,7 @@ from .integrate import Stepper
 from .params import PlantParams
 from .plant import holding_pressures, initial_state
 from .records import Rollout
-from .sensors import SensorParams, measure
+from .sensors import SensorModel, SensorParams
 from .tasks import StrikeTask, reference
 
 
@@ -55,18 +55,24 @@ def home_pressures(params: PlantParams, task: StrikeTask):
 
 
 class StrikeTrial:
-    """Steps one trial and records it."""
+    """Steps one trial and records it (true states, readings and commands, preallocated)."""
 
     def __init__(self, setup: Setup):
         self.setup = setup
         self.task = setup.task
         self.params = setup.plant
         self.stepper = Stepper(setup.plant, setup.task.dt, setup.task.n_substeps)
+        self.sensors = SensorModel(setup.sensors, setup.task.dt)
+        n = setup.task.n_steps
+        self._x_log = np.zeros((n + 1, 6))
+        self._y_log = np.zeros((n + 1, 4))
+        self._u_log = np.zeros((n + 1, 2))
         self.trial_index = 0
+        self.k = 0
 
     def start(self, rng: np.random.Generator, trial: int = 0):
         """Begin trial number ``trial`` (drift applies per trial) at rest at home; returns the
-        first readings [angle, rate, p_a, p_b]."""
+        first readings [angle, rate, p_a, p_b] (a view into the log: copy to keep)."""
         self.trial_index = trial
         self.params = drifted(self.setup.plant, self.setup.drift, trial, rng)
         if self.params is not self.stepper.params:
@@ -76,24 +82,22 @@ class StrikeTrial:
         self.u_hold = np.array(p_hold)
         self.stepper.reset(initial_state(self.params, self.task.home_angle, p_hold), p_hold)
         self.k = 0
-        self._filter = np.array(p_hold)
-        y = self._measure(self.stepper.x)
-        self._log_x, self._log_y, self._log_u = [self.stepper.x.copy()], [y], []
-        return y
-
-    def _measure(self, x):
-        y, self._filter = measure(self.setup.sensors, x, self._filter, self.rng, self.task.dt)
-        return y
+        self.sensors.filtered[0] = p_hold
+        self._x_log[0] = self.stepper.x
+        self._u_log[0] = p_hold
+        return self.sensors.read(self.stepper._x, rng, self._y_log[0:1])[0]
 
     def advance(self, command):
-        """Apply pressure ``command`` [Pa] for one control step; returns the new readings."""
-        x = self.stepper.step(command)
+        """Apply pressure ``command`` [Pa] for one control step; returns the new readings (a view
+        into the log)."""
+        if self.k >= self.task.n_steps:
+            raise RuntimeError(f"advance: the trial ended after {self.task.n_steps} steps; call start()")
+        self.stepper.step(command)
+        self._u_log[self.k] = command
         self.k += 1
-        y = self._measure(x)
-        self._log_x.append(x.copy())
-        self._log_y.append(y)
-        self._log_u.append(tuple(command))
-        return y
+        k = self.k
+        self._x_log[k] = self.stepper._x[0]
+        return self.sensors.read(self.stepper._x, self.rng, self._y_log[k:k + 1])[0]
 
     @property
     def state(self):
@@ -105,13 +109,22 @@ class StrikeTrial:
         """Whether the trial has reached its last sample."""
         return self.k >= self.task.n_steps
 
+    @property
+    def readings(self) -> np.ndarray:
+        """Readings of samples 0..k so far (k+1, 4), a view."""
+        return self._y_log[:self.k + 1]
+
     def rollout(self, controller: str = "", seed=None) -> Rollout:
-        """The recorded trial as a :class:`~muscle_sim.records.Rollout`."""
-        t = np.arange(len(self._log_y)) * self.task.dt
-        u = np.array(self._log_u + self._log_u[-1:] if self._log_u else [tuple(self.u_hold)], dtype=float)
+        """The recorded trial as a :class:`~muscle_sim.records.Rollout`; the command of the last
+        sample repeats the one before (it acts on nothing)."""
+        n = self.k + 1
+        t = np.arange(n) * self.task.dt
+        u = self._u_log[:n].copy()
+        if n > 1:
+            u[n - 1] = u[n - 2]
         ref, _, _ = reference(self.task, t)
         meta = {"config_hash": self.setup.config.digest, "seed": seed, "controller": controller,
                 "trial": self.trial_index,
                 "supply_pressure_kpa": self.params.pneumatics.supply_pressure / 1e3}
-        return Rollout(t=t, measured=np.array(self._log_y, dtype=float), command=u,
-                       true_state=np.array(self._log_x, dtype=float), reference=ref, metadata=meta)
+        return Rollout(t=t, measured=self._y_log[:n].copy(), command=u,
+                       true_state=self._x_log[:n].copy(), reference=ref, metadata=meta)

@@ -7,9 +7,11 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+from functools import cached_property
 
 import numpy as np
 
+from .compiled import broadcast, law
 from .errors import ConfigError
 
 
@@ -31,17 +33,17 @@ class StrikeTask:
     home_pressure: float = 2e5
     fault_depth: float = math.radians(3.0)
 
-    @property
+    @cached_property
     def dt(self) -> float:
         """Control step [s]."""
         return 1.0 / self.control_rate
 
-    @property
+    @cached_property
     def n_steps(self) -> int:
         """Control steps per trial."""
         return int(round(self.trial_length * self.control_rate))
 
-    @property
+    @cached_property
     def strike_index(self) -> int:
         """Sample index of the strike instant (samples are at ``k dt``, k = 0..n_steps)."""
         return int(round(self.strike_time * self.control_rate))
@@ -162,15 +164,22 @@ STRIKE_SPEED_WEIGHT = 1.0
 FAULT_PENALTY = 100.0
 
 
-def step_reward(task: StrikeTask, k, angle, rate, ref_angle):
-    """Reward of the sample at step ``k`` given the reference angle there (floats or arrays).
-
-    ``-TRACK (e/1deg)^2 / N`` every step, so the trial's tracking part sums to minus the mean
-    squared error in deg^2; at the strike step additionally ``-(angle error/1 deg)^2
-    - (speed error/10 %)^2``.
-    """
+@law
+def reward_at(k, angle, rate, ref_angle, n_steps, strike_index, strike_speed):
+    """Reward of the sample at step ``k``: ``-TRACK (e/1deg)^2 / N`` every step, so the trial's
+    tracking part sums to minus the mean squared error in deg^2; at the strike step additionally
+    ``-(angle error/1 deg)^2 - (speed error/10 %)^2``."""
     err_deg = (angle - ref_angle) * (180.0 / math.pi)
-    r = -TRACK_WEIGHT * err_deg * err_deg / task.n_steps
-    at_strike = k == task.strike_index
-    speed_pct = 100.0 * (rate - task.strike_speed) / task.strike_speed
-    return r - at_strike * (STRIKE_ANGLE_WEIGHT * err_deg * err_deg + STRIKE_SPEED_WEIGHT * (speed_pct / 10.0) ** 2)
+    r = -TRACK_WEIGHT * err_deg * err_deg / n_steps
+    if k == strike_index:
+        speed_pct = 100.0 * (rate - strike_speed) / strike_speed
+        r -= STRIKE_ANGLE_WEIGHT * err_deg * err_deg + STRIKE_SPEED_WEIGHT * (speed_pct / 10.0) ** 2
+    return r
+
+
+_reward_u = broadcast(reward_at, 7)
+
+
+def step_reward(task: StrikeTask, k, angle, rate, ref_angle):
+    """:func:`reward_at` of ``task`` over numpy arrays (broadcasting) given the reference angle."""
+    return _reward_u(k, angle, rate, ref_angle, task.n_steps, task.strike_index, task.strike_speed)

@@ -1,21 +1,52 @@
 """Natively batched Gymnasium VectorEnv of the strike task over the same pure plant core."""
 from __future__ import annotations
 
+import math
 
 import numpy as np
 from gymnasium import spaces
 from gymnasium.vector import AutoresetMode, VectorEnv
 from gymnasium.vector.utils import batch_space
 
+from .compiled import law
 from .env import DEMO_CONFIG, check_action, observation_bounds
 from .integrate import Stepper
 from .plant import initial_state
-from .sensors import measure
+from .sensors import SensorModel
 from .simulation import Setup, home_pressures
-from .tasks import FAULT_PENALTY, reference, step_reward
+from .tasks import FAULT_PENALTY, reference, reward_at
 
 _METRICS = ("rms_error_deg", "strike_angle_error_deg", "strike_speed_error_pct", "peak_pressure_kpa",
             "settle_time_s")
+
+
+@law
+def _account(y, x, k, live, ref, home, tolerance, turn_time, dt, strike_index, strike_angle, strike_speed,
+             n_steps, max_steps, low_band, high_band, fault_penalty, sq_err, peak, last_out, strike_err,
+             speed_err, reward, terminated, truncated):
+    """Per member: running squared error, peak pressure, last sample out of the settle band after
+    the turn, strike errors at the strike sample; reward (:func:`~muscle_sim.tasks.reward_at`) and
+    the end flags (fault band of the TRUE angle, step limit)."""
+    for i in range(y.shape[0]):
+        if not live[i]:
+            reward[i] = 0.0
+            terminated[i] = truncated[i] = False
+            continue
+        ki = k[i]
+        ref_angle = ref[min(ki, n_steps)]
+        err = y[i, 0] - ref_angle
+        sq_err[i] += err * err
+        peak[i] = max(peak[i], y[i, 2], y[i, 3])
+        if abs(y[i, 0] - home) > tolerance and ki * dt >= turn_time:
+            last_out[i] = ki
+        if ki == strike_index:
+            strike_err[i] = math.degrees(y[i, 0] - strike_angle)
+            speed_err[i] = 100.0 * (y[i, 1] - strike_speed) / strike_speed
+        r = reward_at(ki, y[i, 0], y[i, 1], ref_angle, n_steps, strike_index, strike_speed)
+        fault = x[i, 0] < low_band or x[i, 0] > high_band
+        terminated[i] = fault
+        truncated[i] = (not fault) and ki >= max_steps
+        reward[i] = r - fault_penalty if fault else r
 
 
 class FlipperStrikeVectorEnv(VectorEnv):
@@ -62,7 +93,7 @@ class FlipperStrikeVectorEnv(VectorEnv):
     def _start(self, mask) -> None:
         self.stepper.reset_some(mask, self._x0, self._p_hold)
         self._k[mask] = 0
-        self._filter[mask] = self._p_hold
+        self.sensors.filtered[mask] = self._p_hold
         self._sq_err[mask] = 0.0
         self._peak[mask] = 0.0
         self._last_out[mask] = -1
@@ -78,18 +109,15 @@ class FlipperStrikeVectorEnv(VectorEnv):
         np.clip(obs, self._low, self._high, out=obs)
         return obs.astype(np.float32)
 
-    def _accumulate(self, y, live) -> None:
-        task = self.setup.task
-        k = self._k
-        err = y[:, 0] - self._ref[np.minimum(k, task.n_steps)]
-        self._sq_err += np.where(live, err * err, 0.0)
-        self._peak = np.where(live, np.maximum(self._peak, y[:, 2:4].max(axis=1)), self._peak)
-        out = (np.abs(y[:, 0] - task.home_angle) > task.settle_tolerance) & (k * task.dt >= task.turn_time)
-        self._last_out = np.where(live & out, k, self._last_out)
-        at = live & (k == task.strike_index)
-        if at.any():
-            self._strike_err[at] = np.degrees(y[at, 0] - task.strike_angle)
-            self._speed_err[at] = 100.0 * (y[at, 1] - task.strike_speed) / task.strike_speed
+    def _accumulate(self, y, x, live) -> None:
+        """Fold this step's readings into the running metrics; sets reward and done flags."""
+        t = self.setup.task
+        j = self.setup.plant.joint
+        _account(y, x, self._k, live, self._ref, t.home_angle, t.settle_tolerance, t.turn_time, t.dt,
+                 t.strike_index, t.strike_angle, t.strike_speed, t.n_steps, self.max_steps,
+                 j.lower_stop - t.fault_depth, j.upper_stop + t.fault_depth, FAULT_PENALTY, self._sq_err,
+                 self._peak, self._last_out, self._strike_err, self._speed_err, self._reward, self._terminated,
+                 self._truncated)
 
     def _metrics(self, done) -> dict:
         task = self.setup.task
@@ -114,7 +142,6 @@ class FlipperStrikeVectorEnv(VectorEnv):
         super().reset(seed=seed)
         n = self.num_envs
         self._k = np.zeros(n, dtype=np.int64)
-        self._filter = np.tile(self._p_hold, (n, 1))
         self._sq_err = np.zeros(n)
         self._peak = np.zeros(n)
         self._last_out = np.full(n, -1, dtype=np.int64)
@@ -122,10 +149,15 @@ class FlipperStrikeVectorEnv(VectorEnv):
         self._speed_err = np.full(n, np.nan)
         self._clipped = np.zeros(n, dtype=np.int64)
         self._needs_reset = np.zeros(n, dtype=bool)
+        self._reward = np.zeros(n)
+        self._terminated = np.zeros(n, dtype=bool)
+        self._truncated = np.zeros(n, dtype=bool)
+        self._y = np.empty((n, 4))
+        self.sensors = SensorModel(self.setup.sensors, self.setup.task.dt, n)
+        self.sensors.filtered[...] = self._p_hold
         self.stepper.reset(np.tile(self._x0, (n, 1)), self._p_hold)
-        y, self._filter = measure(self.setup.sensors, self.stepper.x, self._filter, self.np_random,
-                                  self.setup.task.dt)
-        self._accumulate(y, np.ones(n, dtype=bool))
+        y = self.sensors.read(self.stepper.x, self.np_random, self._y)
+        self._accumulate(y, self.stepper.x, np.ones(n, dtype=bool))
         self._started = True
         return self._observe(y), {}
 
@@ -148,14 +180,9 @@ class FlipperStrikeVectorEnv(VectorEnv):
             x[restart] = self._x0
         live = ~restart
         self._k += live
-        y, self._filter = measure(self.setup.sensors, x, self._filter, self.np_random, task.dt)
-        self._accumulate(y, live)
-        reward = step_reward(task, self._k, y[:, 0], y[:, 1], self._ref[np.minimum(self._k, task.n_steps)])
-        q = x[:, 0]
-        terminated = live & ((q < self._fault_band[0]) | (q > self._fault_band[1]))
-        truncated = live & ~terminated & (self._k >= self.max_steps)
-        reward = np.where(terminated, reward - FAULT_PENALTY, reward)
-        reward = np.where(restart, 0.0, reward)
+        y = self.sensors.read(x, self.np_random, self._y)
+        self._accumulate(y, x, live)
+        reward, terminated, truncated = self._reward.copy(), self._terminated.copy(), self._truncated.copy()
         done = terminated | truncated
         self._needs_reset = done
         info = {"clipped_actions": self._clipped.copy(), "_clipped_actions": np.ones(self.num_envs, dtype=bool)}

@@ -122,3 +122,46 @@ def test_sensor_readings_follow_their_laws(sensors):
     if not any(levels):
         # a noiseless sensor leaves the generator untouched
         assert rng.standard_normal() == np.random.default_rng(3).standard_normal()
+
+
+def _slip_plant(demo_setup, model="maxwell-slip", friction=0.08):
+    p = demo_setup.plant
+    m = replace(p.muscle, friction_model=model, braid_friction=friction, friction_elements=8, slip_length=2e-3)
+    return PlantParams(m, p.joint, p.pneumatics)
+
+
+def test_braid_elements_in_the_plant_follow_the_muscle_lengths(demo_setup):
+    # Reference: the Maxwell-slip law on its own (hysteresis.trace) along muscle A's length path
+    # L_a = l0 (1 - eps0 - r_p q / l0) recorded at every sub-step (one sub-step per control step),
+    # and muscle B's with the opposite shift; the plant's element states must equal it (1e-12 m).
+    from muscle_sim import hysteresis
+
+    p = _slip_plant(demo_setup)
+    x0, hold, cmd = strike_commands(demo_setup, n_steps=150)
+    stepper = Stepper(p, demo_setup.task.dt, 1)
+    stepper.reset(x0, hold)
+    q = [x0[0]] + [stepper.step(u)[0] for u in cmd]
+    q = np.array(q)
+    m, j = p.muscle, p.joint
+    for row, sign in ((0, -1.0), (1, 1.0)):
+        lengths = m.rest_length * (1 - j.pre_contraction) + sign * j.pulley_radius * q
+        want = hysteresis.trace(m, lengths, 2e5).final_state
+        np.testing.assert_allclose(stepper._slip[0, row], want, atol=1e-12)
+    assert np.ptp(q) > 0.3                                         # a real swing, elements saturated
+    assert np.all(np.abs(stepper._slip[0]) > 0.0)
+
+
+def test_braid_hysteresis_dissipates_and_vanishes_without_friction(demo_setup):
+    # Derived: with zero braid friction the Maxwell-slip plant is the tanh plant with zero braid
+    # friction (exactly); with friction the elements only ever take energy out, so the same
+    # commands give a smaller swing than without braid friction (Maxwell-slip elements are
+    # passive: Lampaert, Al-Bender & Swevers 2003).
+    x0, hold, cmd = strike_commands(demo_setup, n_steps=200)
+    task = demo_setup.task
+    run = lambda params: simulate(params, x0, cmd, task.dt, task.n_substeps, u_before=hold)  # noqa: E731
+    np.testing.assert_array_equal(run(_slip_plant(demo_setup, friction=0.0)),
+                                  run(_slip_plant(demo_setup, "tanh", friction=0.0)))
+    free = run(_slip_plant(demo_setup, "tanh", friction=0.0))
+    slip = run(_slip_plant(demo_setup, friction=0.15))
+    assert np.ptp(slip[:, 0]) < np.ptp(free[:, 0])
+    assert not np.allclose(slip, run(_slip_plant(demo_setup, "tanh", friction=0.15)))   # a different law
