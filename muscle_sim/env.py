@@ -35,6 +35,25 @@ def observation_into(readings, time_to_strike, low, high, out):
         out[c] = min(max(v, low[c]), high[c])
 
 
+@law
+def observations_into(readings, steps, strike_time, dt, low, high, out):
+    """:func:`observation_into` for each member (readings (B, 4), steps (B,)) into ``out`` (B, 5)."""
+    for i in range(readings.shape[0]):
+        observation_into(readings[i], strike_time - steps[i] * dt, low, high, out[i])
+
+
+@law
+def commands_into(actions, full_scale, clipped_count, out):
+    """Actions in [-1, 1] (clipped, clips counted per member) onto 0 .. ``full_scale`` [Pa]."""
+    for i in range(actions.shape[0]):
+        for c in range(2):
+            a = actions[i, c]
+            v = min(max(a, -1.0), 1.0)
+            if v != a:
+                clipped_count[i] += 1
+            out[i, c] = (v + 1.0) * (0.5 * full_scale)
+
+
 def check_action(action, shape_tail=(2,)):
     """Validate an action array: finite numbers of the right shape (one-line ValueError)."""
     a = np.asarray(action, dtype=float)

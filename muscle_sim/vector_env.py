@@ -9,7 +9,7 @@ from gymnasium.vector import AutoresetMode, VectorEnv
 from gymnasium.vector.utils import batch_space
 
 from .compiled import law
-from .env import DEMO_CONFIG, check_action, observation_bounds
+from .env import DEMO_CONFIG, check_action, commands_into, observation_bounds, observations_into
 from .integrate import Stepper
 from .plant import initial_state
 from .sensors import SensorModel
@@ -103,11 +103,9 @@ class FlipperStrikeVectorEnv(VectorEnv):
 
     def _observe(self, y, mask_all=None):
         task = self.setup.task
-        obs = np.empty((self.num_envs, 5))
-        obs[:, :4] = y
-        obs[:, 4] = task.strike_time - self._k * task.dt
-        np.clip(obs, self._low, self._high, out=obs)
-        return obs.astype(np.float32)
+        obs = np.empty((self.num_envs, 5), dtype=np.float32)
+        observations_into(y, self._k, task.strike_time, task.dt, self._low, self._high, obs)
+        return obs
 
     def _accumulate(self, y, x, live) -> None:
         """Fold this step's readings into the running metrics; sets reward and done flags."""
@@ -150,6 +148,7 @@ class FlipperStrikeVectorEnv(VectorEnv):
         self._clipped = np.zeros(n, dtype=np.int64)
         self._needs_reset = np.zeros(n, dtype=bool)
         self._reward = np.zeros(n)
+        self._command = np.zeros((n, 2))
         self._terminated = np.zeros(n, dtype=bool)
         self._truncated = np.zeros(n, dtype=bool)
         self._y = np.empty((n, 4))
@@ -167,16 +166,16 @@ class FlipperStrikeVectorEnv(VectorEnv):
         a = check_action(actions)
         if a.shape != (self.num_envs, 2):
             raise ValueError(f"actions: shape {a.shape} is not allowed; must be ({self.num_envs}, 2)")
-        task = self.setup.task
-        clipped = np.clip(a, -1.0, 1.0)
         restart = self._needs_reset
-        if restart.any():
+        any_restart = restart.any()
+        if any_restart:
             self._start(restart)
-        self._clipped += np.count_nonzero(clipped != a, axis=1)
-        command = (clipped + 1.0) * (0.5 * self.setup.rated_pressure)
-        command[restart] = self._p_hold
+        command = self._command
+        commands_into(a, self.setup.rated_pressure, self._clipped, command)
+        if any_restart:
+            command[restart] = self._p_hold
         x = self.stepper.step(command)
-        if restart.any():
+        if any_restart:
             x[restart] = self._x0
         live = ~restart
         self._k += live
