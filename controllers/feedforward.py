@@ -1,9 +1,9 @@
 """Model-only feedforward: invert the PRIOR model along the planned reference swing.
 
 Inverse dynamics gives the muscle torque the reference needs (common practice); the static muscle
-model (physics.md section 1, ``F = (p - p_th) A(eps)``) turns it into a pressure pair at a chosen
-co-contraction; inverting the prior's first-order pressure lag and delay (physics.md section 3,
-``tau_p dp/dt = p_cmd(t - T_d) - p``) gives the commands. Only ``setup.prior`` is read, never the
+model (Chou & Hannaford 1996 / Tondu & Lopez 2000, ``F = (p - p_th) A(eps)``) turns it into a
+pressure pair at a chosen co-contraction; inverting the prior's first-order pressure lag and delay
+(``tau_p dp/dt = p_cmd(t - T_d) - p``, common practice for proportional regulators) gives the commands. Only ``setup.prior`` is read, never the
 simulated plant.
 """
 from __future__ import annotations
@@ -12,6 +12,7 @@ import numpy as np
 
 from muscle_sim import joint as _joint
 from muscle_sim import muscle as _muscle
+from muscle_sim.integrate import delay_steps
 from muscle_sim.params import PlantParams
 from muscle_sim.tasks import reference
 
@@ -79,7 +80,7 @@ def model_only_profile(setup, co_contraction: float | None = None) -> PressurePr
     pn = prior.pneumatics
     if pn.model == "lag":
         desired = desired + pn.lag_time_constant * np.gradient(desired, dt, axis=0)
-    shift = int(round(pn.delay / dt))
+    shift = delay_steps(pn.delay, dt)
     index = np.minimum(np.arange(n) + shift, n)
     commands = np.clip(desired[index], 0.0, setup.rated_pressure)
     return PressureProfile(np.arange(n) * dt, commands, metadata={"controller": "model-only"})
