@@ -7,6 +7,7 @@ the learning filter (a low-pass on the update, Bristow, Tharayil & Alleyne 2006)
 """
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass
 
 import numpy as np
@@ -31,15 +32,9 @@ class HatBasis:
         return 2 * self.n_knots
 
     def matrix(self) -> np.ndarray:
-        """``Phi`` (n_samples, n_knots): sample i is ``sum_j Phi[i, j] theta_j``."""
-        pos = np.linspace(0.0, self.n_knots - 1, self.n_samples)
-        left = np.minimum(np.floor(pos).astype(int), self.n_knots - 2)
-        frac = pos - left
-        phi = np.zeros((self.n_samples, self.n_knots))
-        rows = np.arange(self.n_samples)
-        phi[rows, left] = 1.0 - frac
-        phi[rows, left + 1] += frac
-        return phi
+        """``Phi`` (n_samples, n_knots): sample i is ``sum_j Phi[i, j] theta_j`` (read-only, built
+        once per basis size)."""
+        return _hat_matrix(self.n_samples, self.n_knots)
 
     def expand(self, theta) -> np.ndarray:
         """Commands (n_samples, 2) from parameters (2 n_knots,)."""
@@ -55,3 +50,16 @@ class HatBasis:
     def adjoint(self, sample_gradient) -> np.ndarray:
         """Gradient with respect to the parameters from one with respect to the commands (n_samples, 2)."""
         return (self.matrix().T @ np.asarray(sample_gradient, dtype=float)).T.reshape(-1)
+
+
+@functools.lru_cache(maxsize=32)
+def _hat_matrix(n_samples: int, n_knots: int) -> np.ndarray:
+    pos = np.linspace(0.0, n_knots - 1, n_samples)
+    left = np.minimum(np.floor(pos).astype(int), n_knots - 2)
+    frac = pos - left
+    phi = np.zeros((n_samples, n_knots))
+    rows = np.arange(n_samples)
+    phi[rows, left] = 1.0 - frac
+    phi[rows, left + 1] += frac
+    phi.flags.writeable = False
+    return phi

@@ -65,7 +65,7 @@ def model_only_profile(setup, co_contraction: float | None = None) -> PressurePr
     with ``co_contraction`` [Pa] on the weaker side (default ``task.home_pressure``). Row k is held
     from ``t_k`` to ``t_k + dt``, so ``p_d`` is taken at the middle of that interval
     (zero-order-hold compensation, derived; without it the swing lags half a step). The prior's
-    pressure model is inverted: for ``"lag"`` (physics.md section 3)
+    pressure model is inverted: for ``"lag"`` (first-order regulator, common practice)
     ``p_cmd(t) = p_d(t + T_d) + tau_p dp_d/dt (t + T_d)``, for ``"valve"`` only the delay ``T_d``;
     the shift is ``round(T_d / dt)`` samples, holding the last value. Commands are clipped to
     [0, rated pressure].

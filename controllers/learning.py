@@ -1,15 +1,19 @@
 """Physics-informed gradient learner: trial-to-trial updates of a feedforward pressure profile from
 a measured trial, with gradients of the PRIOR model linearised along the MEASURED trajectory.
 
-Update rules (physics.md section 4):
+Update rules:
 - ``gradient``: ``theta+ = theta + beta G^T Q e`` with ``beta = 1 / lambda_max(G^T Q G)``, inside the
-  monotone range ``0 < beta < 2 / ||G||^2`` (Owens, Hatonen & Daley 2009);
-- ``norm-optimal``: ``theta+ = theta + (G^T Q G + S)^-1 G^T Q e`` (Amann, Owens & Rogers 1996).
+  monotone range ``0 < beta < 2 / ||G||^2`` (Owens, Hatonen & Daley 2009, Int. J. Robust Nonlinear
+  Control, "Robust monotone gradient-based discrete-time iterative learning control");
+- ``norm-optimal``: ``theta+ = theta + (G^T Q G + S)^-1 G^T Q e`` (Amann, Owens & Rogers 1996, IEE
+  Proc. Control Theory Appl. 143(2)).
 ``G^T Q e`` comes from the adjoint pass, ``G`` on the profile basis from forward sensitivity passes.
-Limits: the pressure box by projection; the joint angle within the stops by the velocity-level
-constraint method of Muehlebach & Jordan (JMLR 2022): only constraints violated in the measured trial
-enter, as ``grad g_i^T v + alpha g_i >= 0``. A divergence guard rejects an update after a trial whose
-cost grew beyond ``guard_factor`` times the best and falls back to the best profile with half the step.
+Limits: the step is the minimiser of the update's quadratic within the pressure box (an exact
+box-constrained QP); the joint angle is kept within the stops by the velocity-level constraint
+method of Muehlebach & Jordan (2022, JMLR 23(256), "On constraints in first-order optimization"):
+only constraints violated in the measured trial enter, as ``grad g_i^T v + alpha g_i >= 0``.
+A divergence guard rejects an update after a trial whose cost grew beyond ``guard_factor`` times
+the best and falls back to the best profile with half the step.
 The learner sees only a Rollout and the prior model, exactly what a rig gives.
 """
 from __future__ import annotations
@@ -18,6 +22,7 @@ import math
 from dataclasses import asdict, dataclass, field
 
 import numpy as np
+from scipy.linalg import cho_factor, cho_solve, eigh
 
 from muscle_sim.threads import single_blas_thread
 
@@ -28,11 +33,21 @@ from .sensitivity import linearise, measured_states
 #: Muehlebach & Jordan (2022) use alpha T = 0.4; the learner's step is T = 1.
 CONSTRAINT_ALPHA = 0.4
 
+#: A violated angle limit counts as met by a step when its velocity-level condition
+#: ``grad g_i^T d + alpha T g_i >= 0`` holds to this [rad] (0.01 deg).
+ANGLE_CONDITION_TOLERANCE = math.radians(0.01)
+
+#: Penalty weight of the angle constraints in the step QP (rows of unit norm, steps in 10 kPa).
+PENALTY = 1e6
+
+#: Update outcomes; ``success`` (the step is sound) is True for 0 and 1 only.
 STATUS_MESSAGES = {
     0: "update applied",
     1: "update applied within active limits",
     2: "trial cost grew beyond the guard factor: fell back to the best profile with half the step",
-    3: "no error to correct",
+    3: "update applied, but the step is not sound: it misses a violated angle limit's condition "
+       "(or its solver did not converge)",
+    4: "the prior's linearisation along this trial is not finite: profile kept",
 }
 
 
@@ -81,7 +96,14 @@ class LearnerState:
 
 @dataclass
 class UpdateResult:
-    """Outcome of one update, in the manner of scipy's result objects."""
+    """Outcome of one update, in the manner of scipy's result objects.
+
+    ``success``: the step is sound: its quadratic subproblem was solved exactly and every violated
+    angle limit's velocity-level condition holds (to :data:`ANGLE_CONDITION_TOLERANCE`); such a
+    step never raises the prior's predicted cost unless an angle limit asks it to.
+    ``accepted``: the profile changed by this update's step (False after the guard or a
+    non-finite linearisation).
+    """
 
     success: bool
     status: int
@@ -97,7 +119,7 @@ class UpdateResult:
 def gradient_step(H, grad, scale: float = 1.0):
     """Gradient ILC step ``beta G^T Q e`` with ``beta = scale / lambda_max(G^T Q G)``: for
     ``0 < scale < 2`` inside the monotone range of Owens, Hatonen & Daley (2009)."""
-    lam_max = float(np.linalg.eigvalsh(H)[-1])
+    lam_max = float(eigh(H, eigvals_only=True, subset_by_index=[H.shape[0] - 1] * 2, check_finite=False)[0])
     return scale * grad / lam_max if lam_max > 0 else np.zeros_like(grad)
 
 
@@ -105,7 +127,92 @@ def norm_optimal_step(H, grad, regularisation: float):
     """Norm-optimal ILC step ``(G^T Q G + S)^-1 G^T Q e`` with ``S = r mean(diag H) I``
     (Amann, Owens & Rogers 1996)."""
     reg = regularisation * float(np.trace(H)) / H.shape[0]
-    return np.linalg.solve(H + reg * np.eye(H.shape[0]), grad)
+    return cho_solve(cho_factor(H + reg * np.eye(H.shape[0]), check_finite=False), grad, check_finite=False)
+
+
+def box_qp(A, b, low, high, start=None, max_iterations: int | None = None):
+    """``argmin 1/2 z^T A z - b^T z`` subject to ``low <= z <= high`` for a symmetric positive
+    definite ``A``: the primal active-set method for convex QP (Nocedal & Wright 2006, Numerical
+    Optimization, 2nd ed., Algorithm 16.3) on bound constraints, started from ``start`` (default:
+    the unconstrained minimiser) clipped to the box, with the bounds it lies on as the working
+    set. Each iteration fixes
+    one more bound (the first met on the way to the subproblem's minimiser) or frees the bound with
+    the most negative multiplier. Returns ``(z, converged)``; at convergence the free components
+    have zero gradient and the gradient points out of the box at every bound (KKT up to rounding).
+    """
+    n = b.size
+    limit = 10 * n + 50 if max_iterations is None else max_iterations
+    if start is None:
+        z = cho_solve(cho_factor(A, check_finite=False), b, check_finite=False)
+        if np.all((z > low) & (z < high)):
+            return z, True
+    else:
+        z = np.asarray(start, dtype=float)
+    z = np.clip(z, low, high)
+    at_low, at_high = z <= low, z >= high
+    tol = 1e-12 * max(1.0, float(np.max(np.abs(b))))
+    for _ in range(limit):
+        fixed = at_low | at_high
+        free = ~fixed
+        target = z.copy()
+        if free.any():
+            rhs = b[free] - A[np.ix_(free, fixed)] @ z[fixed]
+            target[free] = cho_solve(cho_factor(A[np.ix_(free, free)], check_finite=False), rhs,
+                                     check_finite=False)
+        p = target - z
+        with np.errstate(divide="ignore", invalid="ignore"):
+            reach = np.where(free & (p < 0), (low - z) / p, np.where(free & (p > 0), (high - z) / p, np.inf))
+        block = int(np.argmin(reach))
+        if reach[block] >= 1.0:                       # the subproblem's minimiser is feasible
+            z = target
+            gradient = A @ z - b
+            multiplier = np.where(at_low, gradient, np.where(at_high, -gradient, np.inf))
+            worst = int(np.argmin(multiplier))
+            if multiplier[worst] >= -tol:
+                return z, True
+            at_low[worst] = at_high[worst] = False
+        else:                                         # stop at the first bound met and fix it
+            z = z + max(float(reach[block]), 0.0) * p
+            if p[block] < 0:
+                z[block], at_low[block] = low[block], True
+            else:
+                z[block], at_high[block] = high[block], True
+    return z, False
+
+
+def penalised_box_qp(A, b, low, high, M, h, rho: float, max_iterations: int = 100):
+    """``argmin 1/2 z^T A z - b^T z + rho/2 |min(M z - h, 0)|^2`` subject to ``low <= z <= high``
+    (``A`` symmetric positive definite): the quadratic penalty form of the constraints
+    ``M z >= h``, which also gives the least violation when the box does not let every constraint
+    hold. The objective is convex and piecewise quadratic; each iteration minimises, by
+    :func:`box_qp`, the quadratic of the piece the current point lies on (the rows violated
+    there), which matches the objective's value and gradient at that point, then backtracks
+    (Armijo) on the objective along the way there: a semismooth Newton method (Qi & Sun 1993,
+    Math. Program. 58, "A nonsmooth version of Newton's method"). It has converged when the
+    minimiser of a piece lies on that piece (then it meets the objective's KKT conditions).
+    Returns ``(z, converged)``."""
+
+    def objective(z):
+        short = np.minimum(M @ z - h, 0.0)
+        return 0.5 * z @ A @ z - b @ z + 0.5 * rho * short @ short, A @ z - b + rho * (M.T @ short)
+
+    z = np.clip(cho_solve(cho_factor(A, check_finite=False), b, check_finite=False), low, high)
+    for _ in range(max_iterations):
+        rows = M @ z - h < 0.0
+        piece_A = A + rho * M[rows].T @ M[rows]
+        piece_b = b + rho * M[rows].T @ h[rows]
+        target, solved = box_qp(piece_A, piece_b, low, high, start=z)
+        if not solved:
+            return z, False
+        if np.array_equal(M @ target - h < 0.0, rows):
+            return target, True
+        value, gradient = objective(z)
+        p, t = target - z, 1.0
+        slope = float(gradient @ p)
+        while t > 1e-12 and objective(z + t * p)[0] > value + 1e-4 * t * slope:
+            t *= 0.5
+        z = np.clip(z + t * p, low, high)
+    return z, False
 
 
 class StrikeObjective:
@@ -168,11 +275,7 @@ class GradientLearner:
     def _columns(self, lin):
         """``G`` on the basis by forward passes: angle rows (n+1, P) and strike-rate row (P,)
         over the ``n`` steps the linearisation covers."""
-        n, kn = lin.n_steps, self.basis.n_knots
-        du = np.zeros((n, 2, 2 * kn))
-        du[:, 0, :kn] = self.phi[:n]
-        du[:, 1, kn:] = self.phi[:n]
-        return lin.forward(du)
+        return lin.forward_on_basis(self.phi)
 
     def _violated(self, g_angle, y):
         """Rows ``M v >= h`` of the Muehlebach–Jordan velocity-level constraints for the angle
@@ -189,44 +292,30 @@ class GradientLearner:
 
     def _solve_step(self, A, b, theta, limits):
         """``argmin 1/2 d^T A d - b^T d`` with ``theta + d`` in the pressure box and the violated
-        angle constraints ``M d >= h``: a small box-constrained QP (SLSQP). Returns the step and
-        how many angle constraints bind."""
-        from scipy.optimize import minimize
-
+        angle constraints ``M d >= h``. With the box alone this QP is solved exactly by
+        :func:`box_qp`; with angle constraints its quadratic penalty form (weight :data:`PENALTY`
+        on rows scaled to unit norm) by :func:`penalised_box_qp`. Returns the step, how many
+        angle constraints bind, and whether the step is sound: the solver converged and every
+        constraint holds to :data:`ANGLE_CONDITION_TOLERANCE`."""
         sigma = 1e4                                   # optimise in units of 10 kPa
         As = A * sigma * sigma
         norm = max(float(np.trace(As)) / As.shape[0], 1e-300)
         As, bs = As / norm, b * sigma / norm
         lo, hi = (self.p_low - theta) / sigma, (self.p_high - theta) / sigma
-        z_free = np.linalg.solve(As, bs)
-        z0 = np.clip(z_free, lo, hi)
-        cons = []
         if limits is not None:
             M, h = limits
             rows = np.linalg.norm(M * sigma, axis=1)
             keep = rows > 1e-6 * rows.max() if rows.size and rows.max() > 0 else np.zeros(rows.size, bool)
             # samples the profile cannot move (before the first command acts) carry no constraint
             M, h, rows = M[keep], h[keep], rows[keep]
-            Ms, hs = M * sigma / rows[:, None], h / rows      # unit rows: [rad] -> O(1)
-            cons = [True] if keep.any() else []
-        elif np.all((z_free >= lo) & (z_free <= hi)):
-            return z_free * sigma, 0
-        bounds = list(zip(lo, hi))
-        z = z0
-        # quadratic penalty on the angle constraints, tightened once (L-BFGS-B keeps the box);
-        # robust where an active-set QP meets this problem's scaling
-        for rho in ((1e3, 1e6) if cons else (0.0,)):
-            def fun(z, rho=rho):
-                val, grad = 0.5 * z @ As @ z - bs @ z, As @ z - bs
-                if cons:
-                    short = np.minimum(Ms @ z - hs, 0.0)
-                    val, grad = val + 0.5 * rho * short @ short, grad + rho * (Ms.T @ short)
-                return val, grad
-            z = minimize(fun, z, jac=True, method="L-BFGS-B", bounds=bounds,
-                         options={"maxiter": 300, "ftol": 1e-13, "gtol": 1e-9}).x
-        z = np.clip(z, lo, hi)
-        binding = 0 if not cons else int(np.count_nonzero(Ms @ z - hs < 1e-4))
-        return z * sigma, binding
+            limits = (M * sigma / rows[:, None], h / rows) if keep.any() else None   # unit rows: O(1)
+        if limits is None:
+            z, converged = box_qp(As, bs, lo, hi)
+            return z * sigma, 0, converged
+        z, converged = penalised_box_qp(As, bs, lo, hi, limits[0], limits[1], PENALTY)
+        slack = limits[0] @ z - limits[1]              # per unit row; times the row norm: [rad]
+        met = bool(np.all(slack * rows >= -ANGLE_CONDITION_TOLERANCE))
+        return z * sigma, int(np.count_nonzero(slack < 1e-4)), converged and met
 
     # -- the update ----------------------------------------------------------------------------
     @single_blas_thread
@@ -240,7 +329,7 @@ class GradientLearner:
             new_state = LearnerState(theta=list(state.best_theta), best_theta=state.best_theta,
                                      best_cost=best_cost, step_scale=max(0.5 * state.step_scale, 1.0 / 64),
                                      trial=state.trial + 1, extra={"last_cost": None})
-            result = UpdateResult(True, 2, STATUS_MESSAGES[2], cost, best_cost, 0.0, 0, new_state.step_scale, False)
+            result = UpdateResult(False, 2, STATUS_MESSAGES[2], cost, best_cost, 0.0, 0, new_state.step_scale, False)
             return self.profile(new_state.theta), new_state, result
         # adapt the step: halve it after a trial that got worse than the one before, regrow it by
         # 25 % (up to 1) after one that improved; a model gradient that is a descent direction for
@@ -260,10 +349,11 @@ class GradientLearner:
         n_avail = len(e)          # an aborted first trial: learn from the part that ran
         W = self.objective.w_angle[:n_avail]
         w_rate = self.objective.w_rate if self.task.strike_index < n_avail else 0.0
-        grad = self.basis.adjoint(np.vstack([lin.adjoint(W * e, w_rate * e_rate),
-                                             np.zeros((self.task.n_steps - lin.n_steps, 2))]))
+        # G^T W e on the basis (rows of phi past an aborted trial get no gradient)
+        grad = (self.phi[:lin.n_steps].T @ lin.adjoint(W * e, w_rate * e_rate)).T.reshape(-1)
         g_angle, g_rate = self._columns(lin)
-        H = g_angle.T @ (W[:, None] * g_angle) + w_rate * np.outer(g_rate, g_rate)
+        g_weighted = g_angle * np.sqrt(W)[:, None]
+        H = g_weighted.T @ g_weighted + w_rate * np.outer(g_rate, g_rate)     # G^T W G (symmetric product)
         # the unconstrained step is d* = A^-1 b; limits make it a small QP on the same quadratic
         if self.settings.method == "gradient":
             A, b = np.eye(H.shape[0]), scale * gradient_step(H, grad)
@@ -273,16 +363,23 @@ class GradientLearner:
         limits = self._violated(g_angle, rollout.measured[:, 0])
         if limits is not None:      # the step is d = T v with T = the step scale: alpha T g_i
             limits = (limits[0], scale * limits[1])
-        step, active = self._solve_step(A, b, theta, limits)
+        finite = bool(np.all(np.isfinite(H)) and np.all(np.isfinite(grad)))
+        step, active, solved = self._solve_step(A, b, theta, limits) if finite else (0.0, 0, False)
         new_theta = np.clip(theta + step, self.p_low, self.p_high)
         applied = new_theta - theta
         pred_e = e - g_angle @ applied
         pred_r = e_rate - g_rate @ applied
         predicted = 0.5 * float(np.sum(W * pred_e * pred_e) + w_rate * pred_r * pred_r)
         boxed = int(np.count_nonzero((new_theta <= self.p_low) | (new_theta >= self.p_high)))
-        status = 1 if (active or boxed) else 0
+        if not finite:
+            status = 4
+        elif not solved:
+            status = 3
+        else:
+            status = 1 if (active or boxed) else 0
         new_state = LearnerState(theta=new_theta.tolist(), best_theta=best_theta, best_cost=best_cost,
                                  step_scale=scale, trial=state.trial + 1, extra={"last_cost": cost})
-        result = UpdateResult(True, status, STATUS_MESSAGES[status], cost, predicted,
-                              float(np.max(np.abs(applied))) / 1e3, active + boxed, scale, True)
+        result = UpdateResult(status in (0, 1), status, STATUS_MESSAGES[status], cost,
+                              predicted if finite else cost, float(np.max(np.abs(applied))) / 1e3,
+                              active + boxed, scale, finite)
         return self.profile(new_state.theta), new_state, result

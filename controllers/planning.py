@@ -23,15 +23,34 @@ from .sensitivity import linearise
 
 OBJECTIVES = ("peak-pressure", "mean-pressure")
 
+#: What "the strike is met within the limits" means, checked on every sample of the planned swing
+#: (the optimiser sees the angle limits every 4 ms only): strike angle [rad] and speed [rad/s] of
+#: the prior, the angle limits and the settling band [rad], the pressure box and rate limit [Pa].
+STRIKE_ANGLE_TOLERANCE = 1e-3
+STRIKE_SPEED_TOLERANCE = 1e-2
+ANGLE_TOLERANCE = 1e-3
+PRESSURE_TOLERANCE = 100.0
+
+#: Plan outcomes; ``success`` (the plan meets the strike within the limits) for 0 and 1.
+PLAN_STATUS = {
+    0: "strike met within the limits",
+    1: "strike met within the limits; the optimiser stopped before converging, so the cost may not be the least",
+    2: "strike not met within the limits",
+}
+
 
 @dataclass
 class PlanResult:
-    """Outcome of a plan, scipy-style, with the profile, the planned swing and the diagnosis."""
+    """Outcome of a plan, scipy-style, with the profile, the planned swing and the diagnosis.
+
+    ``success``: the prior, driven by the planned profile, meets the strike angle and speed and
+    stays within every limit at every sample, to the tolerances above; ``misses`` says what
+    falls short otherwise."""
 
     success: bool
     status: int
     message: str
-    feasible: bool
+    misses: list
     profile: object
     swing: np.ndarray           # planned angle (N+1,) [rad] of the prior model
     strike_angle: float         # reached [rad]
@@ -159,11 +178,11 @@ def plan(setup, objective: str = "peak-pressure", max_pressure_rate: float | Non
     res = solve(task.strike_speed, cost, cost_jac, z0)
     theta, _ = unpack(res.x)
     m = model.at(theta)
-    violation = max(float(np.max(np.abs(eq(res.x, task.strike_speed)))), float(-min(ineq(res.x).min(), 0.0)))
-    feasible = violation < 1e-3
+    rate_step = None if max_pressure_rate is None else max_pressure_rate * t[-1] / (K - 1)
+    misses = _misses(theta, m.traj, learner, task, late, rate_step, K)
     max_speed = None
     suggestions = []
-    if not feasible:
+    if misses:
         # how fast can the strike be within the limits? maximise the strike speed at the strike angle
         def neg_speed(z):
             return -model.at(unpack(z)[0]).traj[k_s, 1]
@@ -179,7 +198,7 @@ def plan(setup, objective: str = "peak-pressure", max_pressure_rate: float | Non
                         options={"maxiter": max_iterations, "ftol": 1e-9})
         max_speed = float(-neg_speed(fast.x))
     active = _active_limits(theta, m.traj[:, 0], learner, task, late, max_pressure_rate, K)
-    if not feasible:
+    if misses:
         if "pressure at its upper limit" in " ".join(active):
             suggestions.append("more force: a higher supply (within the rated pressure) or a larger muscle "
                                "radius (force grows with r0^2)")
@@ -188,13 +207,38 @@ def plan(setup, objective: str = "peak-pressure", max_pressure_rate: float | Non
                                "follow-through")
         suggestions.append("a larger pulley radius gives more torque per newton, at the cost of travel")
     profile = learner.profile(theta, planned=True, objective=objective)
-    msg = ("strike met within the limits" + ("" if res.success else f"; optimiser stopped: {res.message}")) \
-        if feasible else (f"strike not met within the limits: best violation {violation:.3g}; "
-                                        f"highest reachable strike speed {max_speed:.3g} rad/s of "
-                                        f"{task.strike_speed:g} rad/s")
-    return PlanResult(feasible, int(res.status), str(msg), feasible, profile, m.traj[:, 0].copy(),
+    status = 2 if misses else (0 if res.success else 1)
+    msg = PLAN_STATUS[status] + (f" ({res.message})" if status == 1 else "")
+    if misses:
+        msg += (f": {'; '.join(misses)}; highest reachable strike speed {max_speed:.3g} rad/s of "
+                f"{task.strike_speed:g} rad/s")
+    return PlanResult(status < 2, status, msg, misses, profile, m.traj[:, 0].copy(),
                       float(m.traj[k_s, 0]), float(m.traj[k_s, 1]), objective, float(cost(res.x)), active,
                       max_speed, suggestions)
+
+
+def _misses(theta, traj, learner, task, late, rate_step, K) -> list:
+    """What the planned swing ``traj`` of knots ``theta`` misses beyond the tolerances: the strike
+    angle and speed at the strike sample, the angle limits at every sample, the settling band from
+    ``task.settle_time``, the pressure box and the knot-to-knot rate step ``rate_step`` [Pa]."""
+    out = []
+    k = task.strike_index
+    q = traj[:, 0]
+    if abs(traj[k, 0] - task.strike_angle) > STRIKE_ANGLE_TOLERANCE:
+        out.append(f"strike angle {np.degrees(traj[k, 0]):.3f} deg of {np.degrees(task.strike_angle):g} deg")
+    if abs(traj[k, 1] - task.strike_speed) > STRIKE_SPEED_TOLERANCE:
+        out.append(f"strike speed {traj[k, 1]:.3g} rad/s of {task.strike_speed:g} rad/s")
+    if q.max() > learner.angle_high + ANGLE_TOLERANCE or q.min() < learner.angle_low - ANGLE_TOLERANCE:
+        out.append(f"joint angle {np.degrees(q.min()):.1f} .. {np.degrees(q.max()):.1f} deg outside "
+                   f"{np.degrees(learner.angle_low):.1f} .. {np.degrees(learner.angle_high):.1f} deg")
+    if np.any(np.abs(q[late] - task.home_angle) > task.settle_tolerance + ANGLE_TOLERANCE):
+        out.append(f"not settled within {np.degrees(task.settle_tolerance):g} deg of home from "
+                   f"{task.settle_time * 1e3:g} ms")
+    if theta.min() < learner.p_low - PRESSURE_TOLERANCE or theta.max() > learner.p_high + PRESSURE_TOLERANCE:
+        out.append("pressure outside its limits")
+    if rate_step is not None and np.max(np.abs(np.diff(theta.reshape(2, K), axis=1))) > rate_step + PRESSURE_TOLERANCE:
+        out.append("pressure rate above its limit")
+    return out
 
 
 def _active_limits(theta, q, learner, task, late, max_rate, K) -> list:

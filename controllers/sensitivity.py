@@ -6,12 +6,17 @@ side, ``d`` its command delay in control steps) is linearised at the MEASURED st
 ``x_k = [angle, rate, p_a, p_b]`` of a trial: ``A_k = df/dx``, ``B_k = df/du`` by central
 differences of that one-step map, all samples in one batched call. The lifted map from commands
 to outputs (angle at every sample, rate at the strike sample) then has the Jacobian ``G0`` whose
-products are computed by a forward and a backward recursion (physics.md section 4).
+products are computed by a forward (sensitivity) and a backward (adjoint) recursion: the products
+``G0 v`` and ``G0^T w`` that gradient and norm-optimal iterative learning control need (Owens,
+Hatonen & Daley 2009, Int. J. Robust Nonlinear Control; Amann, Owens & Rogers 1996, IEE Proc.
+Control Theory Appl. 143(2)). The recursions are compiled with numba; on a hat-function profile basis the
+forward pass touches only the knots already excited (commands are two knots per sample).
 """
 from __future__ import annotations
 
 from dataclasses import dataclass
 
+import numba
 import numpy as np
 
 from muscle_sim.integrate import delay_substeps, rk4_step
@@ -20,6 +25,8 @@ from muscle_sim.params import PlantParams
 _NX = 4  # angle, rate, p_a, p_b (the prior's spool states are inert)
 _STEP = np.array([1e-6, 1e-5, 1.0, 1.0])  # central-difference steps [rad, rad/s, Pa, Pa]
 _STEP_U = 1.0                            # [Pa]
+
+_compile = numba.njit(cache=True, nogil=True)
 
 
 def _one_step(prior: PlantParams, x4, u, dt: float, n_sub: int):
@@ -30,6 +37,94 @@ def _one_step(prior: PlantParams, x4, u, dt: float, n_sub: int):
     for _ in range(n_sub):
         x = rk4_step(0.0, x, u, h, prior)
     return x[:, :4]
+
+
+@_compile
+def _forward(A, B, delay, strike_index, du):
+    """``dx_{k+1} = A_k dx_k + B_k du_{k-d}`` from ``dx_0 = 0`` for columns ``du`` (N, 2, M):
+    angle rows (N+1, M) and the strike-sample rate row (M,)."""
+    n, m = A.shape[0], du.shape[2]
+    dx = np.zeros((4, m))
+    nxt = np.empty((4, m))
+    angles = np.zeros((n + 1, m))
+    rate = np.zeros(m)
+    for k in range(n):
+        src = k - delay
+        for i in range(4):
+            a0, a1, a2, a3 = A[k, i, 0], A[k, i, 1], A[k, i, 2], A[k, i, 3]
+            for p in range(m):
+                nxt[i, p] = a0 * dx[0, p] + a1 * dx[1, p] + a2 * dx[2, p] + a3 * dx[3, p]
+            if src >= 0:
+                b0, b1 = B[k, i, 0], B[k, i, 1]
+                for p in range(m):
+                    nxt[i, p] += b0 * du[src, 0, p] + b1 * du[src, 1, p]
+        dx, nxt = nxt, dx
+        angles[k + 1] = dx[0]
+        if k + 1 == strike_index:
+            rate[:] = dx[1]
+    return angles, rate
+
+
+@_compile
+def _forward_on_basis(A, B, delay, strike_index, phi):
+    """:func:`_forward` for the basis columns: muscle A's command ``phi[:, j]`` (column j) and
+    muscle B's (column K + j) for every knot j of ``phi`` (N, K). Columns of knots no command has
+    reached yet are exactly zero and are skipped; each row of ``phi`` excites its nonzero knots."""
+    n, kn = A.shape[0], phi.shape[1]
+    dx = np.zeros((4, 2 * kn))
+    nxt = np.zeros((4, 2 * kn))
+    angles = np.zeros((n + 1, 2 * kn))
+    rate = np.zeros(2 * kn)
+    reached = 0                      # knots 0 .. reached-1 have been excited
+    for k in range(n):
+        src = k - delay
+        if src >= 0:
+            for j in range(kn - 1, reached - 1, -1):
+                if phi[src, j] != 0.0:
+                    reached = j + 1
+                    break
+        for i in range(4):
+            a0, a1, a2, a3 = A[k, i, 0], A[k, i, 1], A[k, i, 2], A[k, i, 3]
+            for side in range(2):
+                for j in range(side * kn, side * kn + reached):
+                    nxt[i, j] = a0 * dx[0, j] + a1 * dx[1, j] + a2 * dx[2, j] + a3 * dx[3, j]
+            if src >= 0:
+                b0, b1 = B[k, i, 0], B[k, i, 1]
+                for j in range(reached):
+                    w = phi[src, j]
+                    if w != 0.0:
+                        nxt[i, j] += b0 * w
+                        nxt[i, kn + j] += b1 * w
+        dx, nxt = nxt, dx
+        for side in range(2):
+            for j in range(side * kn, side * kn + reached):
+                angles[k + 1, j] = dx[0, j]
+        if k + 1 == strike_index:
+            rate[:] = dx[1]
+    return angles, rate
+
+
+@_compile
+def _adjoint(A, B, delay, strike_index, w_angle, w_rate):
+    """``lambda_k = A_k^T lambda_{k+1} + C_k^T w_k`` backwards; command gradient (N, 2)."""
+    n = A.shape[0]
+    lam = np.zeros(4)
+    nxt = np.zeros(4)
+    grad = np.zeros((n, 2))
+    for k in range(n, 0, -1):
+        lam[0] += w_angle[k]
+        if k == strike_index:
+            lam[1] += w_rate
+        src = k - 1 - delay
+        if src >= 0:
+            for c in range(2):
+                grad[src, c] = B[k - 1, 0, c] * lam[0] + B[k - 1, 1, c] * lam[1] \
+                    + B[k - 1, 2, c] * lam[2] + B[k - 1, 3, c] * lam[3]
+        for i in range(4):
+            nxt[i] = A[k - 1, 0, i] * lam[0] + A[k - 1, 1, i] * lam[1] + A[k - 1, 2, i] * lam[2] \
+                + A[k - 1, 3, i] * lam[3]
+        lam, nxt = nxt, lam
+    return grad
 
 
 @dataclass
@@ -52,36 +147,22 @@ class Linearisation:
         ``du`` (N, 2, ...) (trailing axes are independent columns)."""
         du = np.asarray(du, dtype=float)
         tail = du.shape[2:]
-        dx = np.zeros((_NX,) + tail)
-        angles = np.zeros((self.n_steps + 1,) + tail)
-        rate = np.zeros(tail)
-        flat = du.reshape(du.shape[0], 2, -1)
-        dx = dx.reshape(_NX, -1)
-        for k in range(self.n_steps):
-            src = k - self.delay
-            dx = self.A[k] @ dx
-            if src >= 0:
-                dx = dx + self.B[k] @ flat[src]
-            angles[k + 1] = dx[0].reshape(tail)
-            if k + 1 == self.strike_index:
-                rate = dx[1].reshape(tail).copy()
-        return angles, rate
+        flat = np.ascontiguousarray(du.reshape(du.shape[0], 2, -1))
+        angles, rate = _forward(self.A, self.B, self.delay, self.strike_index, flat)
+        return angles.reshape((self.n_steps + 1,) + tail), rate.reshape(tail)
+
+    def forward_on_basis(self, phi) -> tuple[np.ndarray, np.ndarray]:
+        """``G0`` on a profile basis: the :meth:`forward` of the columns ``du[:, 0, j] = phi[:, j]``
+        (muscle A, columns 0..K-1) and ``du[:, 1, K + j] = phi[:, j]`` (muscle B) for a basis
+        matrix ``phi`` (N', K) with N' >= N; returns angle rows (N+1, 2K) and the rate row (2K,)."""
+        phi = np.ascontiguousarray(np.asarray(phi, dtype=float)[: self.n_steps])
+        return _forward_on_basis(self.A, self.B, self.delay, self.strike_index, phi)
 
     def adjoint(self, w_angle, w_rate: float = 0.0) -> np.ndarray:
         """``G0^T w``: command gradient (N, 2) for output weights ``w_angle`` (N+1,) on the angle
         samples and ``w_rate`` on the strike-sample rate."""
-        w_angle = np.asarray(w_angle, dtype=float)
-        lam = np.zeros(_NX)
-        grad = np.zeros((self.n_steps, 2))
-        for k in range(self.n_steps, 0, -1):
-            lam[0] += w_angle[k]
-            if k == self.strike_index:
-                lam[1] += w_rate
-            src = k - 1 - self.delay
-            if src >= 0:
-                grad[src] = self.B[k - 1].T @ lam
-            lam = self.A[k - 1].T @ lam
-        return grad
+        w_angle = np.ascontiguousarray(w_angle, dtype=float)
+        return _adjoint(self.A, self.B, self.delay, self.strike_index, w_angle, float(w_rate))
 
 
 def measured_states(rollout, prior: PlantParams, task) -> np.ndarray:

@@ -305,8 +305,9 @@ def cmd_learn_step(args) -> int:
     new_profile.write_csv(out)
     state_file = state_path_for(out)
     write_json_atomic(state_file, new_state.to_dict())
-    report = {"cost": result.cost, "predicted_cost": result.predicted_cost, "status": result.status,
-              "message": result.message, "accepted": result.accepted, "active_limits": result.active_constraints,
+    report = {"cost": result.cost, "predicted_cost": result.predicted_cost, "success": result.success,
+              "status": result.status, "message": result.message, "accepted": result.accepted,
+              "active_limits": result.active_constraints,
               "largest_change_kpa": result.step_norm_kpa, "profile": str(out), "state": str(state_file),
               "peak_command_kpa": float(new_profile.commands.max()) / 1e3,
               "safety": safety.GENERAL + " " + safety.HARDWARE}
@@ -440,8 +441,8 @@ def cmd_plan(args) -> int:
     ax2.set_xlabel("time [s]")
     save_figure_atomic(fig, out / "plan.png")
     plt.close(fig)
-    report = {"feasible": result.feasible, "success": result.success, "status": result.status,
-              "message": result.message, "objective": result.objective, "objective_value": result.objective_value,
+    report = {"success": result.success, "status": result.status, "message": result.message,
+              "misses": result.misses, "objective": result.objective, "objective_value": result.objective_value,
               "strike_angle_deg": math.degrees(result.strike_angle), "strike_speed_rad_s": result.strike_speed,
               "active_limits": result.active_limits, "max_strike_speed_rad_s": result.max_strike_speed,
               "suggestions": result.suggestions, "profile": str(out / "profile.csv"),

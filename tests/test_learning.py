@@ -140,3 +140,134 @@ def test_resume_reproduces_the_uninterrupted_run_bit_for_bit(tmp_path):
     assert a["trials"] == b["trials"]
     for name in ("final_profile.csv", "profiles/state-0005.json", "rollouts/trial-0004.csv"):
         assert (full / name).read_bytes() == (part / name).read_bytes()
+
+
+def test_box_qp_is_the_bounded_least_squares_minimiser():
+    # reference: scipy.optimize.lsq_linear (bounded-variable least squares, Stark & Parker 1995) on
+    # the same QP written as min |L^T z - L^-1 b|^2 with A = L L^T; tolerance 1e-9 absolute
+    from scipy.optimize import lsq_linear
+
+    from controllers.learning import box_qp
+
+    rng = np.random.default_rng(11)
+    for case in range(40):
+        n = int(rng.integers(2, 40))
+        Q = rng.standard_normal((n, n))
+        A = Q @ Q.T + 0.05 * n * np.eye(n)
+        b = 5 * rng.standard_normal(n)
+        low, high = -rng.random(n), rng.random(n)
+        z, converged = box_qp(A, b, low, high, start=None if case % 2 else rng.uniform(low, high))
+        L = np.linalg.cholesky(A)
+        ref = lsq_linear(L.T, np.linalg.solve(L, b), bounds=(low, high), method="bvls", tol=1e-14).x
+        assert converged
+        np.testing.assert_allclose(z, ref, rtol=0, atol=1e-9)
+
+
+def test_penalised_box_qp_reaches_the_penalty_minimum():
+    # reference: the same penalised objective minimised by scipy's L-BFGS-B with tight tolerances
+    # (reference library); the exact method must reach a value no higher (to 1e-9 relative), meet
+    # its optimality conditions, and hold feasible constraints to O(1/rho)
+    from scipy.optimize import minimize
+
+    from controllers.learning import penalised_box_qp
+
+    rng = np.random.default_rng(5)
+    n, m, rho = 12, 4, 1e6
+    Q = rng.standard_normal((n, n))
+    A, b = Q @ Q.T + n * np.eye(n), rng.standard_normal(n)
+    low, high = -np.ones(n), np.ones(n)
+    M = rng.standard_normal((m, n))
+    M /= np.linalg.norm(M, axis=1)[:, None]
+    h = M @ rng.uniform(-0.5, 0.5, n) + 0.2          # met by some point inside the box
+
+    def objective(z):
+        short = np.minimum(M @ z - h, 0.0)
+        return 0.5 * z @ A @ z - b @ z + 0.5 * rho * short @ short, A @ z - b + rho * M.T @ short
+
+    z, converged = penalised_box_qp(A, b, low, high, M, h, rho)
+    ref = minimize(objective, np.zeros(n), jac=True, method="L-BFGS-B", bounds=list(zip(low, high)),
+                   options={"maxiter": 100000, "ftol": 1e-15, "gtol": 1e-12}).x
+    assert converged
+    assert objective(z)[0] <= objective(ref)[0] + 1e-9 * abs(objective(ref)[0])
+    grad = objective(z)[1]
+    inside = (z > low + 1e-12) & (z < high - 1e-12)
+    assert np.max(np.abs(grad[inside])) < 1e-8 * rho
+    assert np.all(grad[z <= low + 1e-12] >= -1e-6) and np.all(grad[z >= high - 1e-12] <= 1e-6)
+    assert np.min(M @ z - h) > -10.0 / rho * np.linalg.norm(b) - 1e-9
+
+
+def test_forward_pass_on_the_basis_equals_the_general_forward_pass(demo_setup):
+    # reference: Linearisation.forward of the dense basis columns (the general recursion);
+    # tolerance 1e-12 of the largest response (the same sums in another order)
+    setup = demo_setup
+    prior, task = setup.prior, setup.task
+    n = 200
+    hold = np.array(home_pressures(prior, task))
+    _, _, cmd = strike_commands(setup, n_steps=n)
+    x0 = initial_state(prior, task.home_angle, hold)
+    traj = simulate(prior, x0, cmd, task.dt, task.n_substeps, u_before=hold)
+    lin = linearise(prior, traj[:, :4], cmd, replace(task, strike_time=0.2))
+    from controllers.basis import HatBasis
+
+    phi = HatBasis.for_grid(n, task.dt, 0.008).matrix()
+    kn = phi.shape[1]
+    du = np.zeros((n, 2, 2 * kn))
+    du[:, 0, :kn], du[:, 1, kn:] = phi, phi
+    ang, rate = lin.forward_on_basis(phi)
+    ang_ref, rate_ref = lin.forward(du)
+    scale = np.max(np.abs(ang_ref))
+    np.testing.assert_allclose(ang, ang_ref, rtol=0, atol=1e-12 * scale)
+    np.testing.assert_allclose(rate, rate_ref, rtol=0, atol=1e-12 * np.max(np.abs(rate_ref)))
+
+
+def _first_trial(raw_or_path, trials=3):
+    from controllers.simple import ReplayProfile
+    from controllers.tuning import make_learner, start_profile, trial_rng
+    from muscle_sim.runs import run_trial
+
+    setup = Setup.from_config(raw_or_path)
+    learner = make_learner(setup, "norm-optimal", trials, 0)
+    state = learner.initial_state(start_profile(setup))
+    profile = learner.profile(state.theta)
+    rollout, _ = run_trial(setup, ReplayProfile(profile), 0, np.random.default_rng([0, 0]))
+    return learner, state, profile, rollout
+
+
+def test_update_success_means_a_sound_step():
+    # reference: the learner's own definition (derived): success only for an exactly solved step
+    # that meets every violated angle limit's condition; without limits the prior then predicts a
+    # lower cost (the exact minimiser of a quadratic that is the cost at zero step)
+    import yaml
+
+    learner, state, profile, rollout = _first_trial(DEMO)
+    _, _, result = learner.update(rollout, profile, state)
+    assert result.success and result.accepted and result.status in (0, 1)
+    assert result.predicted_cost < result.cost
+    # the guard: a trial far worse than the best is no sound step; the best profile is rerun
+    worse = replace(state, best_theta=state.theta, best_cost=result.cost / 10)
+    _, after, guarded = learner.update(rollout, profile, worse)
+    assert (guarded.success, guarded.accepted, guarded.status) == (False, False, 2)
+    assert after.theta == state.theta
+    # a limit that cannot be met: with a margin of 16 deg the lower limit (-29 deg) lies above
+    # the home angle (-30 deg, from the config), also where the commands cannot reach yet
+    raw = yaml.safe_load(DEMO.read_text())
+    raw["learning"]["angle_margin"] = "16 deg"
+    learner16, state16, profile16, rollout16 = _first_trial(raw)
+    _, _, missed = learner16.update(rollout16, profile16, state16)
+    assert (missed.success, missed.accepted, missed.status) == (False, True, 3)
+    # limits that can be met: a margin of 15 deg puts the lower limit at the home angle
+    raw["learning"]["angle_margin"] = "15 deg"
+    learner15, state15, profile15, rollout15 = _first_trial(raw)
+    _, _, met = learner15.update(rollout15, profile15, state15)
+    assert met.success and met.status == 1 and met.active_constraints > 0
+
+
+def test_update_on_a_trial_the_prior_cannot_linearise_keeps_the_profile():
+    # reference: derived: a NaN rate reading makes the prior's linearisation NaN; the update must
+    # say so and keep the profile rather than return NaN commands
+    learner, state, profile, rollout = _first_trial(DEMO)
+    bad = replace(rollout, measured=rollout.measured.copy())
+    bad.measured[40, 1] = np.nan
+    new_profile, new_state, result = learner.update(bad, profile, state)
+    assert (result.success, result.accepted, result.status) == (False, False, 4)
+    assert new_state.theta == state.theta and np.all(np.isfinite(new_profile.commands))
