@@ -19,7 +19,7 @@ from dataclasses import dataclass
 import numba
 import numpy as np
 
-from muscle_sim.integrate import delay_substeps, rk4_step
+from muscle_sim.integrate import delay_steps as steps_of_delay, rk4_step
 from muscle_sim.params import PlantParams
 
 _NX = 4  # angle, rate, p_a, p_b (the prior's spool states are inert)
@@ -172,7 +172,7 @@ def measured_states(rollout, prior: PlantParams, task) -> np.ndarray:
     x = y[:, :4].copy()
     if not np.all(np.isfinite(x[:, 2:4])):
         pn = prior.pneumatics
-        d = int(round(pn.delay / task.dt))
+        d = steps_of_delay(pn.delay, task.dt)
         p = x[0, 2:4] if np.all(np.isfinite(x[0, 2:4])) else rollout.command[0]
         alpha = 1.0 - np.exp(-task.dt / pn.lag_time_constant)
         for k in range(x.shape[0]):
@@ -188,8 +188,7 @@ def linearise(prior: PlantParams, states, commands, task, delay_steps: int | Non
     states = np.asarray(states, dtype=float)
     commands = np.asarray(commands, dtype=float)
     n = commands.shape[0]
-    d = (delay_substeps(prior, task.dt, task.n_substeps) + task.n_substeps // 2) // task.n_substeps \
-        if delay_steps is None else delay_steps
+    d = steps_of_delay(prior.pneumatics.delay, task.dt) if delay_steps is None else delay_steps
     x = states[:n]
     u = np.vstack([np.repeat(commands[:1], d, axis=0), commands])[:n] if d else commands
     m = 2 * (_NX + 2)
