@@ -44,11 +44,6 @@ class PressureProfile:
         if self.commands.shape != (self.t.size, 2):
             raise DataError(f"profile: commands of shape {self.commands.shape} do not match {self.t.size} times")
 
-    @property
-    def dt(self) -> float:
-        """Sample step of the profile [s]."""
-        return float(self.t[1] - self.t[0]) if self.t.size > 1 else 0.0
-
     def check_grid(self, dt: float, n_steps: int, source: str = "profile") -> None:
         """Raise DataError unless the profile covers ``n_steps`` samples on the step ``dt``."""
         if self.t.size < n_steps:

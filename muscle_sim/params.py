@@ -28,12 +28,6 @@ def check_positive(owner: str, name: str, value: float, unit: str = "") -> None:
         _fail(owner, name, value, "a finite number > 0", unit)
 
 
-def check_nonnegative(owner: str, name: str, value: float, unit: str = "") -> None:
-    """Raise ParameterError unless ``value`` is a finite number >= 0."""
-    if not (isinstance(value, (int, float)) and math.isfinite(value) and value >= 0):
-        _fail(owner, name, value, "a finite number >= 0", unit)
-
-
 def check_range(owner: str, name: str, value: float, low: float, high: float,
                 unit: str = "", *, low_open: bool = False, high_open: bool = False) -> None:
     """Raise ParameterError unless ``low <= value <= high`` (ends optionally open)."""

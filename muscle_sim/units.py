@@ -77,9 +77,3 @@ def to_si(value, kind: str) -> float:
 def _example(kind: str) -> str:
     unit = next(iter(UNITS[kind]))
     return f"1 {unit}".strip()
-
-
-def format_si(value: float, kind: str, unit: str | None = None, digits: int = 4) -> str:
-    """Write an SI ``value`` in ``unit`` (default: the SI unit of ``kind``)."""
-    unit = next(iter(UNITS[kind])) if unit is None else unit
-    return f"{value / UNITS[kind][unit]:.{digits}g} {unit}".strip()
