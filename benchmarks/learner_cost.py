@@ -5,7 +5,8 @@ For each N the tune loop runs its first trials (model-only start, then learned p
 timed updates are those of later trials (trial >= WARMUP_TRIALS), with the learner's state, step
 scale and pressure box as they are in a run; the lower pressure limit is raised to MIN_PRESSURE so
 the box is active in every timed update (the JSON says on how many knots). Each timed trial is
-simulated and updated REPEATS times; the ratio is median update time over median trial time.
+simulated and updated REPEATS times; the ratio is median update time over median trial time;
+``linearise_s`` is the part spent linearising the prior (central differences of its one-step map).
 One process, BLAS pinned to one thread with threadpoolctl.
 Writes benchmarks/results/learner_cost.json. Goal: ratio <= 0.5 for every N.
 """
@@ -25,6 +26,7 @@ from threadpoolctl import threadpool_info, threadpool_limits
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
+from controllers.sensitivity import linearise, measured_states  # noqa: E402
 from controllers.simple import ReplayProfile  # noqa: E402
 from controllers.tuning import make_learner, start_profile, trial_rng  # noqa: E402
 from muscle_sim.records import write_json_atomic  # noqa: E402
@@ -62,7 +64,7 @@ def measure(setup: Setup) -> dict:
     """Median trial and update times of the timed (steady-state) trials of one setup."""
     learner = make_learner(setup, "norm-optimal", WARMUP_TRIALS + TIMED_TRIALS, SEED)
     state = learner.initial_state(start_profile(setup))
-    trial_times, update_times, boxed, statuses = [], [], [], []
+    trial_times, update_times, linearise_times, boxed, statuses = [], [], [], [], []
     for i in range(WARMUP_TRIALS + TIMED_TRIALS):
         profile = learner.profile(state.theta)
         timed = i >= WARMUP_TRIALS
@@ -77,10 +79,14 @@ def measure(setup: Setup) -> dict:
             theta = np.asarray(new_state.theta)
             trial_times.append(t_trial)
             update_times.append(t_update)
+            x = measured_states(rollout, setup.prior, setup.task)
+            linearise_times.append(_median_time(lambda: linearise(setup.prior, x, rollout.command[:-1], setup.task),
+                                                repeats)[0])
             boxed.append(int(np.count_nonzero((theta <= learner.p_low) | (theta >= learner.p_high))))
             statuses.append(result.status)
         state = new_state
     return {"trial_s": statistics.median(trial_times), "update_s": statistics.median(update_times),
+            "linearise_s": statistics.median(linearise_times),
             "timed_trials": list(range(WARMUP_TRIALS, WARMUP_TRIALS + TIMED_TRIALS)),
             "knots_on_pressure_box": boxed, "update_status": statuses,
             "knots_per_muscle": learner.basis.n_knots}
@@ -94,10 +100,13 @@ def main() -> dict:
                 for lib in threadpool_info() if lib["user_api"] == "blas"]
         for n in SAMPLES:
             m = measure(_setup(demo, n))
-            row = {"samples": n, "control_rate_hz": n / 0.8, **m, "update_over_trial": m["update_s"] / m["trial_s"]}
+            row = {"samples": n, "control_rate_hz": n / 0.8, **m, "update_over_trial": m["update_s"] / m["trial_s"],
+                   "linearise_share_of_update": m["linearise_s"] / m["update_s"]}
             rows.append(row)
             print(f"N = {n:5d}: trial {m['trial_s'] * 1e3:8.1f} ms, update {m['update_s'] * 1e3:8.1f} ms, "
-                  f"ratio {row['update_over_trial']:5.2f} (knots on the pressure box {m['knots_on_pressure_box']})")
+                  f"ratio {row['update_over_trial']:5.2f}; linearisation "
+                  f"{100 * row['linearise_share_of_update']:3.0f} % of the update "
+                  f"(knots on the pressure box {m['knots_on_pressure_box']})")
     for a, b in zip(rows, rows[1:]):
         b["update_growth_per_doubling"] = b["update_s"] / a["update_s"]
     out = {"benchmark": "learner_cost", "python": platform.python_version(), "numpy": np.__version__,
