@@ -398,6 +398,90 @@ def cmd_calibrate(args) -> int:
     return 0
 
 
+def _identification_table(result) -> list[str]:
+    """The parameter table of ``pamjoint identify`` in display units; '*' marks parameters the data
+    do not excite (they keep the prior's value)."""
+    from controllers.identification import DISPLAY_UNITS
+
+    lines = [f"{'parameter':<24} {'prior':>10} {'fitted':>10} {'+- 1 sigma':>11}  unit"]
+    for name, p in result.parameters.items():
+        unit, scale = DISPLAY_UNITS[name]
+        fitted = f"{p.value / scale:>10.4g}" if p.excited else f"{'-':>10}"
+        sd = f"{p.std / scale:>11.2g}" if p.excited and np.isfinite(p.std) else f"{'-':>11}"
+        mark = f"  * {p.note}" if not p.excited else (f"  ({p.note})" if p.note else "")
+        lines.append(f"{name:<24} {p.prior / scale:>10.4g} {fitted} {sd}  {unit:<9}{mark}".rstrip())
+    return lines
+
+
+def _plot_identification(result, logs, task, path) -> Path:
+    """Measured angle against the prior's prediction before and after the fit, one panel per trial."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    from .records import save_figure_atomic
+
+    shown = list(zip(logs, result.predictions))[:4]
+    fig, axes = plt.subplots(len(shown), 1, figsize=(8, 2.6 * len(shown) + 0.6), sharex=True, squeeze=False,
+                             layout="constrained")
+    for ax, (log, (before, after)) in zip(axes[:, 0], shown):
+        ax.plot(log.t, np.degrees(log.measured[:, 0]), color="k", lw=1.5, label="measured")
+        ax.plot(log.t[:before.shape[0]], np.degrees(before[:, 0]), "--", label="prior before")
+        ax.plot(log.t[:after.shape[0]], np.degrees(after[:, 0]), label="prior after")
+        ax.set_ylabel("angle [deg]")
+    axes[0, 0].legend(fontsize="small")
+    axes[-1, 0].set_xlabel("time [s]")
+    fig.suptitle("prior model against the logged trials (same commands)", fontsize="small")
+    saved = save_figure_atomic(fig, path)
+    plt.close(fig)
+    return saved
+
+
+def cmd_identify(args) -> int:
+    """Fit the prior's payload, friction, pressure response and force scale to logged trials."""
+    from controllers.identification import PARAMETERS, config_snippet, update_prior
+    from .records import read_log, write_json_atomic, write_text_atomic
+    from .simulation import Setup
+
+    setup = Setup.from_config(args.config)
+    names = None
+    if args.fit:
+        names = [n.strip() for n in args.fit.split(",") if n.strip()]
+        for n in names or [args.fit]:
+            if n not in PARAMETERS:
+                raise BadInput(f"--fit: {n!r} is not allowed; must be a comma-separated list of "
+                               f"{', '.join(PARAMETERS)}")
+    logs = [read_log(path, setup.task, resample=args.resample, allow_short=True) for path in args.rollout]
+    out = _out_dir(args, "identify")
+    _, result = update_prior(setup, logs, parameters=names)
+    snippet = config_snippet(result)
+    png = _plot_identification(result, logs, setup.task, out / "identification.png")
+    write_text_atomic(out / "prior_fit.yaml", snippet + "# " + safety.GENERAL + "\n")
+    report = {"config": setup.config.source, "config_hash": setup.config.digest,
+              "rollouts": [str(p) for p in args.rollout], **result.to_dict(), "snippet": snippet,
+              "plot": str(png), "safety": safety.GENERAL + " " + safety.HARDWARE}
+    write_json_atomic(out / "identification.json", report)
+    if args.json:
+        return _print_json(report)
+    steps = sum(len(log.t) - 1 for log in logs)
+    print(f"identified the prior of {setup.config.source} from {len(logs)} trial(s), {steps} control steps: "
+          f"{result.message}")
+    for line in _identification_table(result):
+        print("  " + line)
+    (a0, a1), (p0, p1) = result.angle_rms, result.pressure_rms
+    pressure = f", pressure {p0 / 1e3:.3g} -> {p1 / 1e3:.3g} kPa" if np.isfinite(p0) else ""
+    print(f"  prediction error (rms) before -> after: angle {math.degrees(a0):.3g} -> {math.degrees(a1):.3g} deg"
+          f"{pressure}; residual {result.residual_rms_before:.4g} -> {result.residual_rms:.4g} noise sigmas")
+    if any(not p.excited for p in result.parameters.values()):
+        print("  * not excited by these trials: kept at the prior's value")
+    print(snippet, end="")
+    print(f"wrote {out}/identification.json, prior_fit.yaml, identification.png")
+    print(safety.GENERAL)
+    print(safety.HARDWARE)
+    return 0
+
+
 def cmd_plan(args) -> int:
     """Plan the strike offline on the prior model."""
     import matplotlib
@@ -538,6 +622,19 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", help="output folder (default: a new folder under runs/)")
     p.add_argument("--json", action="store_true", help="print the report as JSON")
     p.set_defaults(func=cmd_calibrate)
+
+    p = sub.add_parser("identify", help="fit the prior's payload, friction, pressure response and force scale "
+                       "to logged trials")
+    p.add_argument("--config", required=True, help="YAML config whose prior is fitted")
+    p.add_argument("--rollout", required=True, action="append",
+                   help="trial log CSV (as learn-step reads it); repeat for several trials")
+    p.add_argument("--fit", help="comma-separated parameters to fit (default all: pressure_delay, "
+                   "pressure_time_constant, payload_mass, viscous_damping, coulomb_torque, payload_radius, "
+                   "force_scale)")
+    p.add_argument("--resample", action="store_true", help="resample irregular logs onto the control grid")
+    p.add_argument("--out", help="output folder (default: a new folder under runs/)")
+    p.add_argument("--json", action="store_true", help="print the report as JSON")
+    p.set_defaults(func=cmd_identify)
 
     p = sub.add_parser("plan", help="plan the strike offline on the prior model under limits")
     p.add_argument("config", help="YAML config")

@@ -155,9 +155,19 @@ DRIFT_KEYS = _section(
 )
 
 PRIOR_KEYS = _section(
+    payload_mass=Key("mass", "payload mass the prior assumes (null: the plant's if payload_known, else none)",
+                     default=None, **_NONNEG),
+    payload_radius=Key("length", "where the prior's payload rides from the pivot (null: the plant's)",
+                       default=None, unit="mm", **_NONNEG),
     muscle_model=Key("str", "ideal (no wall, no end effect, no friction) or plant (the plant's muscle, "
                      "its braid friction as the tanh law)",
                      default="ideal", choices=("ideal", "plant")),
+    viscous_damping=Key("rotational_damping", "pivot viscous friction the prior assumes (null: the plant's if "
+                        "pivot_friction, else none)", default=None, **_NONNEG),
+    coulomb_torque=Key("torque", "pivot dry friction the prior assumes (null: the plant's if pivot_friction, "
+                       "else none)", default=None, **_NONNEG),
+    force_scale=Key("dimensionless", "multiplier on the prior's muscle force (null: 1, the model as written)",
+                    default=None, low=0.05, high=20.0),
     end_correction=Key("dimensionless", "end correction the prior assumes (null: that of muscle_model)",
                        default=None, low=1.0, high=10.0),
     payload_known=Key("bool", "whether the prior knows the payload", default=False),
@@ -419,19 +429,28 @@ _GRAVITY = 9.80665  # standard gravity [m/s^2] (CGPM 1901)
 
 
 def joint_params(cfg: Config, payload: bool = True, inertia_error: float = 0.0,
-                 pivot_friction: bool = True) -> JointParams:
-    """Build :class:`JointParams` from ``plant.joint`` (optionally as a prior model sees it)."""
+                 pivot_friction: bool = True, payload_mass: float | None = None,
+                 payload_radius: float | None = None, viscous_damping: float | None = None,
+                 coulomb_torque: float | None = None) -> JointParams:
+    """Build :class:`JointParams` from ``plant.joint`` (optionally as a prior model sees it).
+
+    ``payload`` and ``pivot_friction`` take the plant's payload and pivot friction or none; a
+    given ``payload_mass``, ``payload_radius``, ``viscous_damping`` or ``coulomb_torque`` (SI)
+    replaces the plant's value instead."""
     j = cfg.get("plant.joint")
-    m_pay = j["payload_mass"] if payload else 0.0
-    moment = (j["paddle_mass"] * j["center_of_mass"] + m_pay * j["payload_radius"]) * _GRAVITY
+    m_pay = payload_mass if payload_mass is not None else (j["payload_mass"] if payload else 0.0)
+    r_pay = j["payload_radius"] if payload_radius is None else payload_radius
+    moment = (j["paddle_mass"] * j["center_of_mass"] + m_pay * r_pay) * _GRAVITY
     hanging = j["hanging_angle"]
     values = dict(
         pulley_radius=j["pulley_radius"], pre_contraction=j["pre_contraction"],
-        inertia=j["paddle_inertia"] * (1.0 + inertia_error), payload_inertia=m_pay * j["payload_radius"] ** 2,
+        inertia=j["paddle_inertia"] * (1.0 + inertia_error), payload_inertia=m_pay * r_pay ** 2,
         gravity_moment=0.0 if hanging is None else moment,
         gravity_offset=0.0 if hanging is None else -hanging,
-        viscous_damping=j["viscous_damping"] if pivot_friction else 0.0,
-        coulomb_torque=j["coulomb_torque"] if pivot_friction else 0.0,
+        viscous_damping=viscous_damping if viscous_damping is not None else (
+            j["viscous_damping"] if pivot_friction else 0.0),
+        coulomb_torque=coulomb_torque if coulomb_torque is not None else (
+            j["coulomb_torque"] if pivot_friction else 0.0),
         coulomb_rate_scale=j["coulomb_rate_scale"], lower_stop=j["lower_stop"], upper_stop=j["upper_stop"],
         stop_stiffness=j["stop_stiffness"], stop_damping=j["stop_damping"])
     return _build(JointParams, values, "plant.joint", {"inertia": "paddle_inertia"})
@@ -471,8 +490,12 @@ def prior_params(cfg: Config) -> PlantParams:
     if pr["end_correction"] is not None:
         muscle = _build(McKibbenParams, {**muscle.__dict__, "end_correction": pr["end_correction"]},
                         "prior")
+    if pr["force_scale"] is not None:
+        muscle = _build(McKibbenParams, {**muscle.__dict__, "force_scale": pr["force_scale"]}, "prior")
     joint = joint_params(cfg, payload=pr["payload_known"], inertia_error=pr["inertia_error"],
-                         pivot_friction=pr["pivot_friction"])
+                         pivot_friction=pr["pivot_friction"], payload_mass=pr["payload_mass"],
+                         payload_radius=pr["payload_radius"], viscous_damping=pr["viscous_damping"],
+                         coulomb_torque=pr["coulomb_torque"])
     pneu = pneumatic_params(cfg, model=pr["pressure_model"], lag_time_constant=pr["pressure_time_constant"],
                             delay=pr["pressure_delay"])
     return _build_plant(muscle, joint, pneu, "prior")

@@ -77,6 +77,24 @@ def test_bad_values_are_one_line_with_path(key, value, expect):
     assert expect in msg
 
 
+@pytest.mark.parametrize("key, value, expect", [
+    ("payload_mass", "-0.1 kg", "must be >= 0 kg"),
+    ("payload_mass", 0.1, "has no unit"),
+    ("payload_radius", "250 kg", "unit 'kg'"),
+    ("payload_radius", "-5 mm", "must be >= 0 mm"),
+    ("viscous_damping", "-0.01 N m s/rad", "must be >= 0 N m s/rad"),
+    ("coulomb_torque", "0.05 N", "unit 'N'"),
+    ("force_scale", 0.01, "must be >= 0.05 and <= 20"),
+    ("force_scale", "1 bar", "unit 'bar'"),
+])
+def test_bad_prior_values_are_one_line_with_path(key, value, expect):
+    raw = demo_raw()
+    raw["prior"][key] = value
+    msg = _error(raw)
+    assert msg.startswith(f"prior.{key}:")
+    assert expect in msg
+
+
 @pytest.mark.parametrize("muscle_model", ["ideal", "plant"])
 def test_prior_never_models_braid_hysteresis(muscle_model):
     # The plant may use Maxwell-slip braid friction; the prior keeps the simple tanh law (and with
