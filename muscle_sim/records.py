@@ -102,14 +102,13 @@ class Rollout:
 
     ``t`` (N+1,) sample times; ``measured`` (N+1, 4) readings [angle, rate, p_a, p_b];
     ``command`` (N+1, 2) pressure commands (row k acts from t_k to t_k+1); ``reference`` (N+1,)
-    planned angle; ``true_state`` (N+1, 6) the simulator's state, None for a rig log.
+    planned angle: exactly what a rig can log as well.
     """
 
     t: _np.ndarray
     measured: _np.ndarray
     command: _np.ndarray
     reference: _np.ndarray
-    true_state: _np.ndarray | None = None
     metadata: dict = field(default_factory=dict)
 
     def columns(self) -> _np.ndarray:

@@ -55,7 +55,7 @@ def home_pressures(params: PlantParams, task: StrikeTask):
 
 
 class StrikeTrial:
-    """Steps one trial and records it (true states, readings and commands, preallocated)."""
+    """Steps one trial and records it (readings and commands, preallocated)."""
 
     def __init__(self, setup: Setup):
         self.setup = setup
@@ -64,7 +64,6 @@ class StrikeTrial:
         self.stepper = Stepper(setup.plant, setup.task.dt, setup.task.n_substeps)
         self.sensors = SensorModel(setup.sensors, setup.task.dt)
         n = setup.task.n_steps
-        self._x_log = np.zeros((n + 1, 6))
         self._y_log = np.zeros((n + 1, 4))
         self._u_log = np.zeros((n + 1, 2))
         self.trial_index = 0
@@ -83,7 +82,6 @@ class StrikeTrial:
         self.stepper.reset(initial_state(self.params, self.task.home_angle, p_hold), p_hold)
         self.k = 0
         self.sensors.filtered[0] = p_hold
-        self._x_log[0] = self.stepper.x
         self._u_log[0] = p_hold
         return self.sensors.read(self.stepper._x, rng, self._y_log[0:1])[0]
 
@@ -96,7 +94,6 @@ class StrikeTrial:
         self._u_log[self.k] = command
         self.k += 1
         k = self.k
-        self._x_log[k] = self.stepper._x[0]
         return self.sensors.read(self.stepper._x, self.rng, self._y_log[k:k + 1])[0]
 
     @property
@@ -127,4 +124,4 @@ class StrikeTrial:
                 "trial": self.trial_index,
                 "supply_pressure_kpa": self.params.pneumatics.supply_pressure / 1e3}
         return Rollout(t=t, measured=self._y_log[:n].copy(), command=u,
-                       true_state=self._x_log[:n].copy(), reference=ref, metadata=meta)
+                       reference=ref, metadata=meta)

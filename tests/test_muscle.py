@@ -49,7 +49,7 @@ def test_tondu_lopez_equals_chou_hannaford_over_a_grid(r0, alpha0_deg, l0):
 
 
 def test_regression_values_from_the_equations():
-    # Derived values (computed from Tondu & Lopez 2000 eq., listed in the design notes):
+    # Derived values (computed by hand from Tondu & Lopez 2000, eq. for F(eps) with the end correction):
     # r0 = 10 mm, alpha0 = 20 deg, P = 500 kPa -> 2214.39 / 1538.52 / 933.80 N; eps_max = 0.38560.
     p = ideal()
     assert muscle.static_force(p, 5e5, [0.0, 0.1, 0.2]) == pytest.approx([2214.39, 1538.52, 933.80], abs=0.01)

@@ -19,7 +19,8 @@ from conftest import strike_commands
 
 def test_fixed_step_matches_solve_ivp_over_a_one_second_strike(demo_setup):
     # Reference: scipy.integrate.solve_ivp (DOP853, rtol 1e-10) on the same rhs with the same
-    # piecewise-constant delayed commands. Tolerances from the design goal: 0.01 deg, 0.1 kPa.
+    # piecewise-constant delayed commands. Tolerances (our fidelity goal, common practice for
+    # control simulation at this step): 0.01 deg, 0.1 kPa.
     x0, hold, cmd = strike_commands(demo_setup, n_steps=500)
     task = demo_setup.task
     fixed = simulate(demo_setup.plant, x0, cmd, task.dt, task.n_substeps, u_before=hold)
