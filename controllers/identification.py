@@ -1003,9 +1003,10 @@ def _result(prior, geo, base, requested, structural, outcomes, identified, start
                     note = f"at its {'lower' if side < 0 else 'upper'} bound"
                     if not np.isfinite(stage.stds[n]):
                         stuck.append(n)
-            params[n] = ParameterEstimate(n, base[n], fit.values[n], stage.stds[n], True, True, at_bound, note)
+            params[n] = ParameterEstimate(n, float(base[n]), float(fit.values[n]), float(stage.stds[n]), True, True,
+                                          at_bound, note)
         for n, (std, why) in stage.released.items():
-            params[n] = ParameterEstimate(n, base[n], base[n], std, False, False, False, why)
+            params[n] = ParameterEstimate(n, float(base[n]), float(base[n]), float(std), False, False, False, why)
         if stage.free:
             statuses.append((label, fit.status if coords.names else 5))
     for n in requested:
