@@ -982,7 +982,8 @@ def _errors(problem: _Problem, preds) -> tuple:
 
 
 def _failed(prior, geo, base, requested, notes, problem, status) -> IdentificationResult:
-    params = {n: ParameterEstimate(n, base[n], base[n], math.nan, False, False, note=notes.get(n, ""))
+    params = {n: ParameterEstimate(n, float(base[n]), float(base[n]), math.nan, False, False,
+                                   note=notes.get(n, "not fitted: " + STATUS_MESSAGES[status]))
               for n in requested}
     return IdentificationResult(False, status, STATUS_MESSAGES[status], params, prior, prior, math.nan, math.nan,
                                 (math.nan, math.nan), (math.nan, math.nan), sum(problem.sizes()), problem.n_sim,

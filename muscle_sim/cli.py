@@ -456,11 +456,11 @@ def cmd_identify(args) -> int:
     out = _out_dir(args, "identify")
     _, result = update_prior(setup, logs, parameters=names)
     snippet = config_snippet(result)
-    png = _plot_identification(result, logs, setup.task, out / "identification.png")
+    png = _plot_identification(result, logs, setup.task, out / "identification.png") if result.predictions else None
     write_text_atomic(out / "prior_fit.yaml", snippet + "# " + safety.GENERAL + "\n")
     report = {"config": setup.config.source, "config_hash": setup.config.digest,
               "rollouts": [str(p) for p in args.rollout], **result.to_dict(), "snippet": snippet,
-              "plot": str(png), "safety": safety.GENERAL + " " + safety.HARDWARE}
+              "plot": str(png) if png else None, "safety": safety.GENERAL + " " + safety.HARDWARE}
     write_json_atomic(out / "identification.json", report)
     if args.json:
         return _print_json(report)
@@ -476,7 +476,7 @@ def cmd_identify(args) -> int:
     if any(not p.excited for p in result.parameters.values()):
         print("  * not excited by these trials: kept at the prior's value")
     print(snippet, end="")
-    print(f"wrote {out}/identification.json, prior_fit.yaml, identification.png")
+    print(f"wrote {out}/identification.json, prior_fit.yaml" + (", identification.png" if png else ""))
     print(safety.GENERAL)
     print(safety.HARDWARE)
     return 0
