@@ -20,10 +20,8 @@ from __future__ import annotations
 import copy
 import dataclasses
 import platform
-import statistics
 import sys
 import tempfile
-import time
 from pathlib import Path
 
 import numpy as np
@@ -46,13 +44,7 @@ SIM_REPEATS = 50
 GOAL_S = 2.0
 
 
-def _median_time(fn, repeats: int):
-    times, out = [], None
-    for _ in range(repeats):
-        t0 = time.perf_counter()
-        out = fn()
-        times.append(time.perf_counter() - t0)
-    return statistics.median(times), out
+from _timing import median_time as _median_time  # noqa: E402  (benchmarks/ is on sys.path)
 
 
 def _cases():

@@ -43,13 +43,7 @@ SEED = 0
 MIN_PRESSURE = "0.5 bar"
 
 
-def _median_time(fn, repeats: int):
-    times, out = [], None
-    for _ in range(repeats):
-        t0 = time.perf_counter()
-        out = fn()
-        times.append(time.perf_counter() - t0)
-    return statistics.median(times), out
+from _timing import median_time as _median_time  # noqa: E402  (benchmarks/ is on sys.path)
 
 
 def _setup(demo: dict, n: int) -> Setup:
