@@ -206,9 +206,6 @@ class Stepper:
             raise SimulationDiverged(f"state left the physical range at t = {self.t:.4f} s: {self._x[bad]}")
         return self.x
 
-    def t0_plus(self, k: int) -> float:
-        """Time after ``k`` control steps (exact multiple, no accumulated rounding)."""
-        return k * self.control_dt
 
 
 def simulate(params: PlantParams, x0, commands, control_dt: float, n_substeps: int, u_before=None):

@@ -53,7 +53,7 @@ def _packed(params: PlantParams) -> np.ndarray:
     row[[K_VALVE_TAU, K_VALVE_GAIN, K_DEAD_VOLUME]] = pn.valve_time_constant, pn.valve_gain, pn.dead_volume
     row[[K_K_IN, K_K_OUT, K_K_CHAMBER]] = pn.k_in, pn.k_out, pn.k_chamber
     row[[K_LAG_TAU, K_MAX_RATE]] = pn.lag_time_constant, pn.max_pressure_rate
-    row[K_SLIP_MODEL] = getattr(m, "friction_model", "tanh") == "maxwell-slip"
+    row[K_SLIP_MODEL] = m.friction_model == "maxwell-slip"
     row.setflags(write=False)
     return row
 

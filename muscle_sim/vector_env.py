@@ -85,8 +85,6 @@ class FlipperStrikeVectorEnv(VectorEnv):
         self._p_hold = np.array(home_pressures(self.setup.plant, task))
         self._x0 = initial_state(self.setup.plant, task.home_angle, self._p_hold)
         self._ref = reference(task, task.times)[0]
-        j = self.setup.plant.joint
-        self._fault_band = (j.lower_stop - task.fault_depth, j.upper_stop + task.fault_depth)
         self._started = False
 
     # -- per-member bookkeeping ------------------------------------------------------------------
