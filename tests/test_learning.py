@@ -75,17 +75,23 @@ def test_robust_monotone_condition_predicts_both_sides_of_the_boundary():
         assert (norms[-1] < norms[0]) == converges
 
 
+def _prior_linearised(setup, n, strike_time):
+    """(hold, commands, x0, linearisation) of the prior along its own noise-free strike of n steps."""
+    prior, task = setup.prior, setup.task
+    hold = np.array(home_pressures(prior, task))
+    _, _, cmd = strike_commands(setup, n_steps=n)
+    x0 = initial_state(prior, task.home_angle, hold)
+    traj = simulate(prior, x0, cmd, task.dt, task.n_substeps, u_before=hold)
+    return hold, cmd, x0, linearise(prior, traj[:, :4], cmd, replace(task, strike_time=strike_time))
+
+
 def test_adjoint_and_forward_sensitivity_agree_with_finite_differences_of_the_prior():
     # Reference: central finite differences of the prior model's simulation (integrate.simulate)
     # along its own noise-free trajectory; adjoint identity <G a, b> = <a, G^T b> to 1e-10.
     setup = Setup.from_config(DEMO)
     prior, task = setup.prior, setup.task
     n = 150
-    hold = np.array(home_pressures(prior, task))
-    _, _, cmd = strike_commands(setup, n_steps=n)
-    x0 = initial_state(prior, task.home_angle, hold)
-    traj = simulate(prior, x0, cmd, task.dt, task.n_substeps, u_before=hold)
-    lin = linearise(prior, traj[:, :4], cmd, replace(task, strike_time=0.1))
+    hold, cmd, x0, lin = _prior_linearised(setup, n, 0.1)
     rng = np.random.default_rng(3)
     a = rng.standard_normal((n, 2)) * 1e3
     b = rng.standard_normal(n + 1)
@@ -199,14 +205,9 @@ def test_penalised_box_qp_reaches_the_penalty_minimum():
 def test_forward_pass_on_the_basis_equals_the_general_forward_pass(demo_setup):
     # reference: Linearisation.forward of the dense basis columns (the general recursion);
     # tolerance 1e-12 of the largest response (the same sums in another order)
-    setup = demo_setup
-    prior, task = setup.prior, setup.task
+    task = demo_setup.task
     n = 200
-    hold = np.array(home_pressures(prior, task))
-    _, _, cmd = strike_commands(setup, n_steps=n)
-    x0 = initial_state(prior, task.home_angle, hold)
-    traj = simulate(prior, x0, cmd, task.dt, task.n_substeps, u_before=hold)
-    lin = linearise(prior, traj[:, :4], cmd, replace(task, strike_time=0.2))
+    _, _, _, lin = _prior_linearised(demo_setup, n, 0.2)
     from controllers.basis import HatBasis
 
     phi = HatBasis.for_grid(n, task.dt, 0.008).matrix()
