@@ -72,6 +72,9 @@ MUSCLE_KEYS = _section(
     friction_elements=Key("int", "number of Maxwell-slip elements", default=8, low=1, high=64),
     slip_length=Key("length", "braid stretch after which the full Maxwell-slip friction has developed",
                     default=1e-3, low=0, low_open=True, unit="mm"),
+    force_scale=Key("dimensionless", "multiplier on the plant muscle's pulling force (1: the model as written; "
+                    "below 1 the muscle pulls weaker than the law; the prior keeps 1 unless prior.force_scale)",
+                    default=1.0, low=0.05, high=20.0),
 )
 
 MUSCLE_MAP_KEYS = _section(
@@ -482,8 +485,9 @@ def prior_params(cfg: Config) -> PlantParams:
     """The model the controllers believe, derived from ``plant`` by the ``prior`` section."""
     pr = cfg.get("prior")
     muscle = muscle_params(cfg)
-    # the prior never models braid hysteresis: a plant's Maxwell-slip friction becomes the tanh law
-    muscle = replace(muscle, friction_model="tanh")
+    # the prior never models braid hysteresis: a plant's Maxwell-slip friction becomes the tanh law;
+    # nor the plant's force-model error: its force scale is prior.force_scale or 1 (the law as written)
+    muscle = replace(muscle, friction_model="tanh", force_scale=1.0)
     if pr["muscle_model"] == "ideal":
         muscle = replace(muscle, wall_thickness=0.0, end_correction=1.0, threshold_pressure=0.0,
                          braid_friction=0.0)

@@ -68,6 +68,8 @@ def test_unknown_key_gets_a_did_you_mean():
     ("slip_length", "0 mm", "must be > 0 mm"),
     ("slip_length", 1, "has no unit"),
     ("slip_length", "300 mm", "<= rest_length (0.25 m)"),
+    ("force_scale", 0.01, "must be >= 0.05 and <= 20"),
+    ("force_scale", "2 N", "unit 'N'"),
 ])
 def test_bad_values_are_one_line_with_path(key, value, expect):
     raw = demo_raw()
@@ -108,6 +110,18 @@ def test_prior_never_models_braid_hysteresis(muscle_model):
     assert (plant.friction_model, plant.slip_length) == ("maxwell-slip", pytest.approx(5e-4))
     assert prior.friction_model == "tanh"
     assert prior.braid_friction == (plant.braid_friction if muscle_model == "plant" else 0.0)
+
+
+@pytest.mark.parametrize("prior_scale, expect", [(None, 1.0), (0.8, 0.8)])
+def test_plant_force_scale_stays_out_of_the_prior(prior_scale, expect):
+    # The plant's force-model error is what the prior does not know: its force scale is
+    # prior.force_scale, else 1 (the law as written), whatever the plant's (derived from the schema).
+    raw = demo_raw()
+    raw["plant"]["muscle"]["force_scale"] = 0.6
+    raw["prior"]["force_scale"] = prior_scale
+    cfg = config.load(raw)
+    assert config.plant_params(cfg).muscle.force_scale == 0.6
+    assert config.prior_params(cfg).muscle.force_scale == expect
 
 
 def test_demo_keeps_the_tanh_braid_friction():

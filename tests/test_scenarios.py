@@ -1,0 +1,156 @@
+"""Mismatch scenarios: the named configs in configs/scenarios/ and the seeded random draw."""
+import math
+from pathlib import Path
+
+import numpy as np
+import pytest
+import yaml
+
+from controllers.feedforward import FeedforwardController, model_only_profile
+from controllers.tuning import trial_rng
+from muscle_sim import cli, config
+from muscle_sim.pneumatics import tube_delay
+from muscle_sim.runs import run_trial
+from muscle_sim.scenarios import DRIFT_RANGES, DRIFT_SUPPLY_FLOOR, RANGES, draw_scenario
+from muscle_sim.simulation import Setup
+
+ROOT = Path(__file__).resolve().parents[1]
+DEMO = ROOT / "configs" / "flipper.yaml"
+NAMED = sorted((ROOT / "configs" / "scenarios").glob("*.yaml"))
+# values are written with four significant digits (derived from muscle_sim.scenarios._text)
+ROUNDING = 1e-3
+
+
+def _demo_raw():
+    return yaml.safe_load(DEMO.read_text())
+
+
+def _keys(node, prefix=""):
+    out = set()
+    for name, value in node.items():
+        path = f"{prefix}{name}"
+        out |= _keys(value, path + ".") if isinstance(value, dict) else {path}
+    return out
+
+
+def _inside(value, low, high):
+    return low - ROUNDING * abs(low) - 1e-9 <= value <= high + ROUNDING * abs(high) + 1e-9
+
+
+def _loaded():
+    return {path.stem: config.load(path) for path in NAMED}
+
+
+def test_at_least_eight_named_scenarios_each_a_complete_config():
+    assert len(NAMED) >= 8
+    demo_keys = _keys(_demo_raw())
+    for path in NAMED:
+        raw = yaml.safe_load(path.read_text())
+        assert demo_keys <= _keys(raw), f"{path.name} lacks {sorted(demo_keys - _keys(raw))}"
+        assert raw["name"] and "invented" in path.read_text().splitlines()[0]
+
+
+@pytest.mark.parametrize("path", NAMED, ids=[p.stem for p in NAMED])
+def test_named_scenario_passes_check_and_runs_model_only_without_fault(path, capsys):
+    assert cli.main(["check", str(path)]) == 0
+    assert "valid" in capsys.readouterr().out
+    setup = Setup.from_config(path)
+    _, metrics = run_trial(setup, FeedforwardController(model_only_profile(setup)), 0, trial_rng(1, 0), 1)
+    assert metrics["fault"] is None
+    assert np.isfinite(metrics["rms_error_deg"])
+
+
+def test_named_scenarios_span_the_mismatch_ranges():
+    # The ranges the suite claims (configs/scenarios/*.yaml headers); closed-form ratios of config
+    # values, tolerance 1 % for the rounded values written in the files.
+    cfgs = _loaded()
+
+    def ratios(fn):
+        return [fn(c) for c in cfgs.values() if fn(c) is not None]
+
+    def payload_ratio(c):
+        believed = c.get("prior.payload_mass")
+        return c.get("plant.joint.payload_mass") / believed if believed else None
+
+    def delay_ratio(c):
+        pn = c.get("plant.pneumatics")
+        true = tube_delay(pn["tube_length"], pn["temperature"]) + pn["valve_dead_time"]
+        return c.get("prior.pressure_delay") / true if c.get("prior.pressure_delay") is not None else None
+
+    payload = ratios(payload_ratio)
+    assert min(payload) == pytest.approx(0.5, rel=0.01) and max(payload) == pytest.approx(3.0, rel=0.01)
+    inertia = ratios(lambda c: c.get("prior.inertia_error"))
+    assert min(inertia) == pytest.approx(-0.5) and max(inertia) == pytest.approx(0.5)
+    tubes = ratios(lambda c: c.get("plant.pneumatics.tube_length"))
+    assert min(tubes) == pytest.approx(0.5) and max(tubes) == pytest.approx(5.0)
+    delays = ratios(delay_ratio)
+    assert min(delays) == pytest.approx(1 / 3, rel=0.01) and max(delays) == pytest.approx(2.9, rel=0.01)
+    demo = config.load(DEMO)
+    assert any(c.get("plant.muscle.braid_friction") == pytest.approx(4 * demo.get("plant.muscle.braid_friction"))
+               and c.get("plant.sensors.angle_noise") == pytest.approx(5 * demo.get("plant.sensors.angle_noise"))
+               for c in cfgs.values())
+    # a +70 % force-model error: the plant pulls 1/1.7 of the law
+    assert min(ratios(lambda c: c.get("plant.muscle.force_scale"))) == pytest.approx(1 / 1.7, rel=0.01)
+    assert any(config.drift_params(c).active for c in cfgs.values())
+    assert any(c.get("plant.joint.hanging_angle") is not None for c in cfgs.values())
+    assert any(c.get("plant.muscle.friction_model") == "maxwell-slip" for c in cfgs.values())
+    assert max(ratios(lambda c: c.get("task.strike_speed"))) > demo.get("task.strike_speed")
+
+
+@pytest.mark.parametrize("seed", range(50))
+def test_every_draw_validates_within_its_ranges(seed):
+    base = _demo_raw()
+    raw = draw_scenario(base, np.random.default_rng(seed))
+    cfg = config.load(raw)
+    demo = config.load(base)
+    # each drawn value within RANGES (derived from the module's declaration), to the rounding
+    believed = cfg.get("prior.payload_mass")
+    assert believed == pytest.approx(demo.get("plant.joint.payload_mass"))
+    assert _inside(cfg.get("plant.joint.payload_mass") / believed, *RANGES["payload_factor"][:2])
+    assert _inside(cfg.get("prior.inertia_error"), *RANGES["inertia_error"][:2])
+    pn = cfg.get("plant.pneumatics")
+    assert _inside(pn["tube_length"], *RANGES["tube_length"][:2])
+    assert _inside(pn["valve_dead_time"], *RANGES["valve_dead_time"][:2])
+    true_delay = tube_delay(pn["tube_length"], pn["temperature"]) + pn["valve_dead_time"]
+    assert _inside(cfg.get("prior.pressure_delay") / true_delay, *RANGES["delay_factor"][:2])
+    friction = cfg.get("plant.muscle.braid_friction") / demo.get("plant.muscle.braid_friction")
+    assert _inside(friction, *RANGES["friction_factor"][:2])
+    noise = [cfg.get(f"plant.sensors.{k}") / demo.get(f"plant.sensors.{k}")
+             for k in ("angle_noise", "rate_noise", "pressure_noise")]
+    assert _inside(noise[0], *RANGES["noise_factor"][:2]) and np.allclose(noise, noise[0], rtol=2 * ROUNDING)
+    force_error = 1 / cfg.get("plant.muscle.force_scale") - 1
+    assert _inside(force_error, *RANGES["force_error"][:2])
+    assert _inside(cfg.get("task.strike_speed"), *RANGES["strike_speed"][:2])
+    drift = cfg.get("plant.drift")
+    if config.drift_params(cfg).active:
+        assert _inside(drift["friction_growth"], *DRIFT_RANGES["friction_growth"])
+        assert _inside(drift["supply_sag"], *DRIFT_RANGES["supply_sag"])
+        assert drift["supply_floor"] == pytest.approx(DRIFT_SUPPLY_FLOOR)
+    else:
+        assert (drift["friction_growth"], drift["supply_sag"], drift["spread"]) == (0.0, 0.0, 0.0)
+
+
+def test_same_seed_same_config_and_seeds_differ():
+    base = _demo_raw()
+    untouched = _demo_raw()
+    first = draw_scenario(base, np.random.default_rng(7))
+    assert draw_scenario(base, np.random.default_rng(7)) == first
+    assert config.load(draw_scenario(base, np.random.default_rng(7))).digest == config.load(first).digest
+    assert draw_scenario(base, np.random.default_rng(8)) != first
+    assert base == untouched
+
+
+def test_draws_cover_the_ranges_and_drift_both_ways():
+    # 50 draws of a uniform range fill it: the chance that none falls in the outer fifth at one end
+    # is 0.8^50 = 1.4e-5 (derived), so spread over [low, high] must exceed 60 %.
+    base = _demo_raw()
+    cfgs = [config.load(draw_scenario(base, np.random.default_rng(s))) for s in range(50)]
+    tubes = [c.get("plant.pneumatics.tube_length") for c in cfgs]
+    low, high, _ = RANGES["tube_length"]
+    assert max(tubes) - min(tubes) > 0.6 * (high - low)
+    speeds = [c.get("task.strike_speed") for c in cfgs]
+    low, high, _ = RANGES["strike_speed"]
+    assert max(speeds) - min(speeds) > 0.6 * (high - low)
+    drifting = sum(config.drift_params(c).active for c in cfgs)
+    assert 0 < drifting < 50
+    assert all(math.isfinite(c.get("prior.pressure_delay")) for c in cfgs)
