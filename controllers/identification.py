@@ -1033,18 +1033,28 @@ def _result(prior, geo, base, requested, structural, outcomes, identified, start
                                 problem.n_sim, warnings, list(zip(before, after)), geo.radius, geo.gravity)
 
 
+def _setup_geometry(setup) -> dict:
+    """Payload radius and gravity of the prior as the setup's config states them."""
+    cfg = setup.config
+    radius = cfg.get("prior.payload_radius")
+    if radius is None:
+        radius = cfg.get("plant.joint.payload_radius")
+    return {"payload_radius": radius, "gravity": cfg.get("plant.joint.hanging_angle") is not None}
+
+
+def prior_from_values(setup, values: dict) -> PlantParams:
+    """``setup.prior`` with the identified ``values`` (as kept in a learner state) put in."""
+    return apply_prior_values(setup.prior, values, **_setup_geometry(setup)) if values else setup.prior
+
+
 def update_prior(setup, rollouts, prior: PlantParams | None = None, **options):
     """The learner's call: ``(updated prior, IdentificationResult)`` from the trials so far.
 
     ``prior`` defaults to ``setup.prior``; the payload radius, gravity and sensor noise come from
     the setup's config (``prior.payload_radius``, else ``plant.joint.payload_radius``; gravity when
     ``plant.joint.hanging_angle`` is set). Options are those of :func:`identify_prior`."""
-    cfg = setup.config
-    radius = cfg.get("prior.payload_radius")
-    if radius is None:
-        radius = cfg.get("plant.joint.payload_radius")
-    options.setdefault("payload_radius", radius)
-    options.setdefault("gravity", cfg.get("plant.joint.hanging_angle") is not None)
+    for key, value in _setup_geometry(setup).items():
+        options.setdefault(key, value)
     options.setdefault("sensors", setup.sensors)
     result = identify_prior(list(rollouts), setup.prior if prior is None else prior, setup.task, **options)
     return updated_prior(result), result

@@ -13,7 +13,7 @@ box-constrained QP); the joint angle is kept within the stops by the velocity-le
 method of Muehlebach & Jordan (2022, JMLR 23(256), "On constraints in first-order optimization"):
 only constraints violated in the measured trial enter, as ``grad g_i^T v + alpha g_i >= 0``.
 A divergence guard rejects an update after a trial whose cost grew beyond ``guard_factor`` times
-the best and falls back to the best profile with half the step.
+that of the last trial it passed and falls back to that profile with half the step.
 The learner sees only a Rollout and the prior model, exactly what a rig gives.
 """
 from __future__ import annotations
@@ -28,6 +28,7 @@ from muscle_sim.threads import single_blas_thread
 
 from .base import PressureProfile
 from .basis import HatBasis
+from .identification import prior_from_values, update_prior
 from .sensitivity import linearise, measured_states
 
 #: Muehlebach & Jordan (2022) use alpha T = 0.4; the learner's step is T = 1.
@@ -37,6 +38,16 @@ CONSTRAINT_ALPHA = 0.4
 #: ``grad g_i^T d + alpha T g_i >= 0`` holds to this [rad] (0.01 deg).
 ANGLE_CONDITION_TOLERANCE = math.radians(0.01)
 
+#: The trust region's ratio test never shrinks the step scale below this (the guard may).
+MIN_RATIO_SCALE = 1.0 / 16
+#: Achieved-over-predicted error change below which the step scale halves, and above which it
+#: doubles. Nocedal & Wright use 1/4 and 3/4 for a fixed function; between trials the plant also
+#: changes (drift works against a correction and, near the goal, outweighs the step), so only a
+#: step after which the errors moved the wrong way by more than the prior's prediction shrinks the
+#: scale, and one that did at least half of what the prior said regrows it.
+SHRINK_BELOW = -1.0
+GROW_ABOVE = 0.5
+
 #: Penalty weight of the angle constraints in the step QP (rows of unit norm, steps in 10 kPa).
 PENALTY = 1e6
 
@@ -44,10 +55,11 @@ PENALTY = 1e6
 STATUS_MESSAGES = {
     0: "update applied",
     1: "update applied within active limits",
-    2: "trial cost grew beyond the guard factor: fell back to the best profile with half the step",
+    2: "trial cost grew beyond the guard factor: fell back to the last good profile with half the step",
     3: "update applied, but the step is not sound: it misses a violated angle limit's condition "
        "(or its solver did not converge)",
     4: "the prior's linearisation along this trial is not finite: profile kept",
+    5: "the prior predicts no decrease for any step size tried: profile kept, step halved",
 }
 
 
@@ -62,9 +74,12 @@ class LearningSettings:
     speed_weight: float = math.radians(0.1)
     regularisation: float = 0.05
     guard_factor: float = 2.0
+    guard_floor: float = math.radians(0.5)
     angle_margin: float = math.radians(3.0)
     min_pressure: float = 0.0
     max_pressure: float | None = None
+    update_prior: bool = True
+    prior_blend: float = 0.5
     spsa_step: float = 2e4
     spsa_perturbation: float = 1e4
 
@@ -114,6 +129,7 @@ class UpdateResult:
     active_constraints: int
     step_scale: float
     accepted: bool
+    diagnosis: dict = field(default_factory=dict)
 
 
 def gradient_step(H, grad, scale: float = 1.0):
@@ -259,6 +275,13 @@ class GradientLearner:
         j = setup.prior.joint
         self.angle_low = j.lower_stop + settings.angle_margin
         self.angle_high = j.upper_stop - settings.angle_margin
+        self._priors = {}
+        # the cost of an error of guard_floor at every sample: below it no trial counts as diverged
+        self._guard_floor = 0.5 * float(np.sum(self.objective.w_angle)) * settings.guard_floor ** 2
+        t = np.arange(self.phi.shape[0]) * self.task.dt
+        window = np.abs(t - self.task.strike_time) <= settings.strike_window + 1e-12
+        near = np.any(self.phi[window] > 0.0, axis=0)            # knots that shape the strike window
+        self._strike_knots = np.concatenate([near, near])
 
     # -- profiles ----------------------------------------------------------------------------
     def profile(self, theta, **meta) -> PressureProfile:
@@ -317,35 +340,113 @@ class GradientLearner:
         met = bool(np.all(slack * rows >= -ANGLE_CONDITION_TOLERANCE))
         return z * sigma, int(np.count_nonzero(slack < 1e-4)), converged and met
 
+    # -- the prior the learner believes ---------------------------------------------------------
+    def prior_for(self, state: LearnerState):
+        """The prior of this state: the config's, with the identified values the state carries."""
+        values = state.extra.get("prior_values") or {}
+        key = tuple(sorted(values.items()))
+        if key not in self._priors:
+            self._priors[key] = prior_from_values(self.setup, values)
+        return self._priors[key]
+
+    def _reidentify(self, rollout, state: LearnerState):
+        """Cautious model update (Koc, Maeda & Peters 2018, "Optimizing the execution of dynamic
+        robot movements with learning control", IEEE Trans. Robotics: model-updating ILC): fit
+        the prior to this trial, then move each parameter the trial identifies ``prior_blend`` of
+        the way from its current value to the estimate. Returns ``(values, changed names)``."""
+        values = dict(state.extra.get("prior_values") or {})
+        if not self.settings.update_prior or len(rollout.t) < self.task.n_steps + 1:
+            return values, []
+        try:
+            _, result = update_prior(self.setup, [rollout], self.prior_for(state))
+        except (ValueError, ArithmeticError):
+            return values, []
+        if not result.success:
+            return values, []
+        blend = self.settings.prior_blend
+        changed = []
+        for name, estimate in result.values().items():
+            old = result.parameters[name].prior
+            if math.isfinite(estimate) and estimate != old:
+                values[name] = float(old + blend * (estimate - old))
+                changed.append(name)
+        return values, changed
+
     # -- the update ----------------------------------------------------------------------------
+    def _achieved_ratio(self, extra, e, e_rate):
+        """How much of the error change the prior predicted for the last step the trial showed:
+        the W-weighted projection of the achieved change ``e_k - e_(k-1)`` on the predicted one
+        ``-G d`` (1: as predicted, 0: nothing happened, < 0: the other way). A change of the plant
+        between trials (drift, noise) adds to it, which is why only a clearly wrong-way change
+        shrinks the step (:data:`SHRINK_BELOW`). None when the last update made no step."""
+        change = extra.get("predicted_change")
+        if change is None or len(change) != len(e):
+            return None
+        W, w_rate = self.objective.w_angle, self.objective.w_rate
+        d_pred, d_rate = np.asarray(change), extra["predicted_rate_change"]
+        denom = float(np.sum(W * d_pred * d_pred) + w_rate * d_rate * d_rate)
+        if not denom > 0.0:
+            return None
+        d_act = e - np.asarray(extra["last_error"])
+        d_act_rate = e_rate - extra["last_rate_error"]
+        return float(np.sum(W * d_act * d_pred) + w_rate * d_act_rate * d_rate) / denom
+
+    def _step_for(self, H, grad, theta, scale, limits0):
+        """Step at ``scale`` (norm-optimal: the change penalty grows as the scale shrinks)."""
+        if self.settings.method == "gradient":
+            A, b = np.eye(H.shape[0]), scale * gradient_step(H, grad)
+        else:
+            reg = self.settings.regularisation * float(np.trace(H)) / H.shape[0]
+            A, b = (H + reg * np.eye(H.shape[0])) / scale, grad
+        limits = None if limits0 is None else (limits0[0], scale * limits0[1])   # d = T v: alpha T g_i
+        return self._solve_step(A, b, theta, limits)
+
     @single_blas_thread
     def update(self, rollout, profile: PressureProfile, state: LearnerState):
-        """Next profile and state from the trial ``rollout`` run with ``profile`` (= state.theta)."""
+        """Next profile and state from the trial ``rollout`` run with ``profile`` (= state.theta).
+
+        Guard: a trial whose cost exceeds ``guard_factor`` times that of the last trial that
+        passed the guard, and that of a ``guard_floor`` error at every sample (noise and drift
+        move small costs by large factors), or that aborted, falls back to that trial's profile with half the step;
+        the rerun is measured afresh and becomes the reference, so the guard follows a drifting
+        plant and cannot lock. Step size: a trust region on the prior's predicted
+        decrease (Nocedal & Wright 2006, Algorithm 4.1): the ratio of achieved to predicted
+        decrease of the last step halves the step scale below 1/4 and doubles it above 3/4; a
+        step is applied only where the prior predicts a decrease, halving the scale up to four
+        times to find one.
+        """
         theta = np.asarray(state.theta, dtype=float)
         cost = self.objective.cost(rollout)
-        best_cost = state.best_cost
+        extra = state.extra
         aborted = len(rollout.t) < self.task.n_steps + 1
-        if best_cost is not None and (aborted or cost > self.settings.guard_factor * best_cost):
-            new_state = LearnerState(theta=list(state.best_theta), best_theta=state.best_theta,
-                                     best_cost=best_cost, step_scale=max(0.5 * state.step_scale, 1.0 / 64),
-                                     trial=state.trial + 1, extra={"last_cost": None})
-            result = UpdateResult(False, 2, STATUS_MESSAGES[2], cost, best_cost, 0.0, 0, new_state.step_scale, False)
+        ref_cost, ref_theta, rerun = extra.get("ref_cost"), extra.get("ref_theta"), extra.get("rerun", False)
+        guard_level = max(self.settings.guard_factor * ref_cost, self._guard_floor) if ref_cost is not None else None
+        if ref_cost is not None and not rerun and (aborted or cost > guard_level):
+            new_state = LearnerState(theta=list(ref_theta), best_theta=state.best_theta, best_cost=state.best_cost,
+                                     step_scale=max(0.5 * state.step_scale, 1.0 / 64), trial=state.trial + 1,
+                                     extra={"rerun": True, "ref_cost": ref_cost, "ref_theta": ref_theta,
+                                            "prior_values": extra.get("prior_values") or {}})
+            result = UpdateResult(False, 2, STATUS_MESSAGES[2], cost, ref_cost, 0.0, 0, new_state.step_scale,
+                                  False, diagnosis={"guard": True, "reference_cost": ref_cost})
             return self.profile(new_state.theta), new_state, result
-        # adapt the step: halve it after a trial that got worse than the one before, regrow it by
-        # 25 % (up to 1) after one that improved; a model gradient that is a descent direction for
-        # the plant converges for a small enough step (Owens et al. 2009; Bertsekas & Tsitsiklis 2000)
-        last = state.extra.get("last_cost")
+        # this trial passed the guard: it is the reference the next one is judged by (re-measured
+        # every trial, so a drifting plant moves the reference with it)
+        ref_cost, ref_theta = cost, theta.tolist()
         scale = state.step_scale
-        if last is not None:
-            scale = max(scale * 0.5, 1.0 / 64) if cost > last else min(scale * 1.25, 1.0)
+        e, e_rate = self.objective.errors(rollout)
+        achieved_ratio = self._achieved_ratio(extra, e, e_rate)
+        if achieved_ratio is not None:
+            if achieved_ratio < SHRINK_BELOW:
+                scale = max(scale * 0.5, MIN_RATIO_SCALE)
+            elif achieved_ratio > GROW_ABOVE:
+                scale = min(scale * 2.0, 1.0)
+        best_cost, best_theta = state.best_cost, state.best_theta
         if best_cost is None or cost < best_cost:
             best_cost, best_theta = cost, theta.tolist()
-        else:
-            best_theta = state.best_theta
-        prior = self.setup.prior
+        prior_values, reidentified = self._reidentify(rollout, state)
+        prior = self.prior_for(LearnerState(theta=[], extra={"prior_values": prior_values}))
         x = measured_states(rollout, prior, self.task)
         lin = linearise(prior, x, rollout.command[:-1], self.task)
-        e, e_rate = self.objective.errors(rollout)
         n_avail = len(e)          # an aborted first trial: learn from the part that ran
         W = self.objective.w_angle[:n_avail]
         w_rate = self.objective.w_rate if self.task.strike_index < n_avail else 0.0
@@ -354,32 +455,60 @@ class GradientLearner:
         g_angle, g_rate = self._columns(lin)
         g_weighted = g_angle * np.sqrt(W)[:, None]
         H = g_weighted.T @ g_weighted + w_rate * np.outer(g_rate, g_rate)     # G^T W G (symmetric product)
-        # the unconstrained step is d* = A^-1 b; limits make it a small QP on the same quadratic
-        if self.settings.method == "gradient":
-            A, b = np.eye(H.shape[0]), scale * gradient_step(H, grad)
-        else:
-            reg = self.settings.regularisation * float(np.trace(H)) / H.shape[0]
-            A, b = (H + reg * np.eye(H.shape[0])) / scale, grad
         limits = self._violated(g_angle, rollout.measured[:, 0])
-        if limits is not None:      # the step is d = T v with T = the step scale: alpha T g_i
-            limits = (limits[0], scale * limits[1])
         finite = bool(np.all(np.isfinite(H)) and np.all(np.isfinite(grad)))
-        step, active, solved = self._solve_step(A, b, theta, limits) if finite else (0.0, 0, False)
-        new_theta = np.clip(theta + step, self.p_low, self.p_high)
+
+        def predict(applied):
+            pred_e = e - g_angle @ applied
+            pred_r = e_rate - g_rate @ applied
+            return 0.5 * float(np.sum(W * pred_e * pred_e) + w_rate * pred_r * pred_r)
+
+
+        def acceptable(predicted_cost, sound):
+            # a decrease; or, while the trial broke an angle limit, the step that restores the
+            # limit (or violates it least) at a tracking price below the guard factor: feasibility
+            # first, the limits keep the paddle off the stops
+            return predicted_cost < cost or (limits is not None
+                                                 and predicted_cost <= self.settings.guard_factor * cost)
+
+        step, active, solved, predicted, tries = 0.0, 0, False, cost, 0
+        new_theta = theta
+        while finite and tries < 5:
+            step, active, solved = self._step_for(H, grad, theta, scale, limits)
+            new_theta = np.clip(theta + step, self.p_low, self.p_high)
+            predicted = predict(new_theta - theta)
+            tries += 1
+            if acceptable(predicted, solved) or scale <= 1.0 / 64:
+                break
+            scale = max(scale * 0.5, 1.0 / 64)
+        decreasing = finite and acceptable(predicted, solved)
+        if not decreasing:
+            new_theta, predicted = theta, cost
         applied = new_theta - theta
-        pred_e = e - g_angle @ applied
-        pred_r = e_rate - g_rate @ applied
-        predicted = 0.5 * float(np.sum(W * pred_e * pred_e) + w_rate * pred_r * pred_r)
-        boxed = int(np.count_nonzero((new_theta <= self.p_low) | (new_theta >= self.p_high)))
+        at_box = (new_theta <= self.p_low) | (new_theta >= self.p_high)
+        boxed = int(np.count_nonzero(at_box))
         if not finite:
             status = 4
+        elif not decreasing:
+            status = 5
         elif not solved:
             status = 3
         else:
             status = 1 if (active or boxed) else 0
         new_state = LearnerState(theta=new_theta.tolist(), best_theta=best_theta, best_cost=best_cost,
-                                 step_scale=scale, trial=state.trial + 1, extra={"last_cost": cost})
+                                 step_scale=scale, trial=state.trial + 1,
+                                 extra={"ref_cost": ref_cost, "ref_theta": ref_theta, "prior_values": prior_values})
+        if finite and n_avail == self.task.n_steps + 1:
+            # what the prior says this step will do to the errors, for the next trial's ratio
+            new_state.extra.update({"last_error": e.tolist(), "last_rate_error": float(e_rate),
+                                    "predicted_change": (-(g_angle @ applied)).tolist(),
+                                    "predicted_rate_change": float(-(g_rate @ applied))})
+        diagnosis = {"boxed_knots": boxed, "knots": int(new_theta.size),
+                     "boxed_in_strike_window": int(np.count_nonzero(at_box & self._strike_knots)),
+                     "angle_limits": int(limits[0].shape[0]) if limits is not None else 0,
+                     "achieved_over_predicted": achieved_ratio, "reidentified": reidentified,
+                     "prior_values": prior_values, "step_tries": tries}
         result = UpdateResult(status in (0, 1), status, STATUS_MESSAGES[status], cost,
                               predicted if finite else cost, float(np.max(np.abs(applied))) / 1e3,
-                              active + boxed, scale, finite)
+                              active + boxed, scale, finite and decreasing, diagnosis=diagnosis)
         return self.profile(new_state.theta), new_state, result

@@ -105,7 +105,7 @@ def tune(setup, method: str, trials: int, seed: int, out, resume: bool = False, 
         row = {"trial": i, **{k: metrics[k] for k in METRIC_KEYS}, "settle_time_s": metrics["settle_time_s"],
                "fault": metrics["fault"], "cost": result.cost, "predicted_cost": result.predicted_cost,
                "update_status": result.status, "update_message": result.message,
-               "active_limits": result.active_constraints}
+               "active_limits": result.active_constraints, **_diagnosis_fields(result)}
         rows.append(row)
         best = int(np.nanargmin([r["cost"] for r in rows]))
         write_json_atomic(out / "summary.json", _summary(setup, method, seed, trials, rows, best, 1 if i + 1 < trials else 0,
@@ -115,11 +115,90 @@ def tune(setup, method: str, trials: int, seed: int, out, resume: bool = False, 
             break
     best = int(np.nanargmin([r["cost"] for r in rows])) if rows else None
     summary = _summary(setup, method, seed, trials, rows, best, status, message)
+    summary["verdict"] = verdict(rows)
     theta = final_theta(learner, state)
     learner.profile(theta, method=method, final=True).write_csv(out / "final_profile.csv")
     _plots(setup, out, rows)
     write_json_atomic(out / "summary.json", summary)
     return summary
+
+
+#: A strike counts as reached within these (the task's precision goal).
+STRIKE_ANGLE_TOLERANCE_DEG = 0.2
+STRIKE_SPEED_TOLERANCE_PCT = 1.0
+
+
+def _diagnosis_fields(result) -> dict:
+    """What limited a trial's update, for its summary row."""
+    d = result.diagnosis
+    return {"boxed_knots": d.get("boxed_knots"), "boxed_in_strike_window": d.get("boxed_in_strike_window"),
+            "angle_limits": d.get("angle_limits"), "achieved_over_predicted": d.get("achieved_over_predicted"),
+            "reidentified": d.get("reidentified", []), "guard": bool(d.get("guard", False))}
+
+
+def strike_reached(row) -> bool:
+    """Whether a trial's strike is within the task's precision goal (0.2 deg, 1 %)."""
+    a, v = row.get("strike_angle_error_deg"), row.get("strike_speed_error_pct")
+    return a is not None and v is not None and abs(a) <= STRIKE_ANGLE_TOLERANCE_DEG \
+        and abs(v) <= STRIKE_SPEED_TOLERANCE_PCT
+
+
+def verdict(rows, window: int = 4) -> dict:
+    """A plain verdict on a run and the next action, from its summary rows.
+
+    When the strike was not reached, the last ``window`` trials are read for the usual causes,
+    in this order: actuator saturation (the strike window's knots sit on the pressure box), drift
+    faster than learning (guard fallbacks whose rerun came back worse than the profile's earlier
+    trial), prior mismatch beyond what the updates absorb (the errors did not move as the prior
+    predicted, or no sound step could be found), a noise floor (the prior predicts almost no
+    decrease left while the strike is still off), and otherwise a run that is still converging.
+    """
+    if not rows:
+        return {"reached": False, "cause": "no-trials", "message": "no trial ran", "next_action": "run trials"}
+    reached = [r["trial"] for r in rows if strike_reached(r)]
+    recent = rows[-window:]
+    if reached:
+        first = reached[0]
+        tail_ok = strike_reached(rows[-1])
+        return {"reached": True, "cause": "reached", "first_trial": first,
+                "message": f"strike within {STRIKE_ANGLE_TOLERANCE_DEG:g} deg and {STRIKE_SPEED_TOLERANCE_PCT:g} % "
+                           f"from trial {first}" + ("" if tail_ok else "; the last trial is outside again"),
+                "next_action": "check the final profile on the rig at reduced pressure" if tail_ok else
+                               "run more trials or raise learning.regularisation to steady the updates"}
+
+    def share(pred):
+        return sum(1 for r in recent if pred(r)) / len(recent)
+
+    if share(lambda r: (r.get("boxed_in_strike_window") or 0) > 0) >= 0.5:
+        return {"reached": False, "cause": "actuator-saturation",
+                "message": "the strike needs more than the pressures allow: knots shaping the strike sit on the "
+                           "learner's pressure limits",
+                "next_action": "check what is reachable with `pamjoint plan`; raise learning.max_pressure (never above "
+                               "the rating), use a stronger muscle or smaller pulley, or ask for a slower strike"}
+    guards = [i for i, r in enumerate(rows) if r.get("guard")]
+    drifted = [i for i in guards if i + 1 < len(rows) and i > 0 and rows[i + 1]["cost"] > 1.5 * rows[i - 1]["cost"]]
+    if drifted and drifted[-1] >= len(rows) - 2 * window:
+        return {"reached": False, "cause": "drift",
+                "message": "the plant drifts faster than learning follows: a profile rerun after a guard fallback came "
+                           "back worse than when it ran before",
+                "next_action": "find what changes between trials (supply pressure, friction, temperature) and hold it "
+                               "steady, or tune again from the current profile more often"}
+    ratios = [r.get("achieved_over_predicted") for r in recent]
+    poor = [x for x in ratios if x is not None and x < 0.25]
+    unsound = share(lambda r: r.get("update_status") in (3, 5))
+    if len(poor) >= max(1, len(recent) // 2) or unsound >= 0.5:
+        return {"reached": False, "cause": "prior-mismatch",
+                "message": "prior mismatch beyond what the updates absorb: the errors did not change as the prior "
+                           "predicted" + (" (no sound step found)" if unsound >= 0.5 else ""),
+                "next_action": "identify the prior from these trials (`pamjoint identify`), check payload, inertia and "
+                               "pressure delay in the config, then tune again"}
+    if share(lambda r: r["cost"] > 0 and (r["cost"] - r["predicted_cost"]) < 0.05 * r["cost"]) >= 0.5:
+        return {"reached": False, "cause": "noise-floor",
+                "message": "noise floor reached: the prior predicts almost no improvement left, yet the strike is off",
+                "next_action": "reduce sensor noise or trial-to-trial variation, or accept the present precision"}
+    return {"reached": False, "cause": "converging",
+            "message": "still converging: errors are falling but the strike is not within the goal yet",
+            "next_action": "run more trials (`pamjoint tune --resume`)"}
 
 
 def _plots(setup, out: Path, rows) -> None:

@@ -259,6 +259,9 @@ def cmd_tune(args) -> int:
     best = summary["trials"][summary["best_trial"]]
     print(f"{summary['message']}; best trial {summary['best_trial']}: rms {best['rms_error_deg']:.3f} deg, "
           f"strike {best['strike_angle_error_deg']:+.3f} deg, speed {best['strike_speed_error_pct']:+.2f} %")
+    verdict = summary.get("verdict") or {}
+    if verdict:
+        print(f"verdict: {verdict['message']}; next: {verdict['next_action']}")
     print(f"wrote {out}/summary.json, profiles/, rollouts/, final_profile.csv, learning_curve.png, trajectories.png")
     print(safety.GENERAL)
     print(safety.HARDWARE)
@@ -267,7 +270,7 @@ def cmd_tune(args) -> int:
 
 def cmd_compare(args) -> int:
     """Compare model-only, feedback and learned control on one plant and seed."""
-    from controllers.comparison import compare
+    from controllers.comparison import compare, feedback_line
     from .simulation import Setup
 
     setup = Setup.from_config(args.config)
@@ -281,6 +284,7 @@ def cmd_compare(args) -> int:
     print(_METRIC_HEAD.replace(" " * 20, f"{'controller':>20}", 1))
     for name, m in data["controllers"].items():
         print(_metric_line(name, m))
+    print(feedback_line(data["feedback"]))
     print(f"wrote {out}/comparison.json, comparison.md, overlay_angle.png, overlay_error.png")
     print(safety.GENERAL)
     print(safety.HARDWARE)

@@ -220,13 +220,31 @@ LEARNING_KEYS = _section(
                        default=0.05, **_NONNEG),
     guard_factor=Key("dimensionless", "reject an update whose trial cost exceeds the best so far by this factor",
                      default=2.0, low=1.0, low_open=True),
+    guard_floor=Key("angle", "swing error below which no trial counts as diverged (noise and drift move small "
+                    "costs by large factors)", default=math.radians(0.5), unit="deg", **_NONNEG),
     angle_margin=Key("angle", "keep the swing this far inside the end stops", default=math.radians(3.0),
                      unit="deg", **_NONNEG),
     min_pressure=Key("pressure", "lowest pressure command the learner may give", default=0.0, unit="bar", low=0),
     max_pressure=Key("pressure", "highest pressure command (null: the rated pressure)", default=None, unit="bar",
                      **_POS),
+    update_prior=Key("bool", "re-identify the prior from each trial and linearise the updated prior", default=True),
+    prior_blend=Key("dimensionless", "share of the way to a new identified value the prior moves per trial",
+                    default=0.5, low=0.0, high=1.0, low_open=True),
     spsa_step=Key("pressure", "SPSA: size of the first update", default=2e4, unit="kPa", **_POS),
     spsa_perturbation=Key("pressure", "SPSA: perturbation c of the first trials", default=1e4, unit="kPa", **_POS),
+)
+
+FEEDBACK_KEYS = _section(
+    proportional=Key("pressure_per_angle", "PID proportional gain, differential pressure per angle error "
+                     "(null: placed on the prior)", default=None, unit="bar/deg", **_NONNEG),
+    integral=Key("pressure_per_angle_time", "PID integral gain (null: placed on the prior)", default=None,
+                 unit="bar/(deg s)", **_NONNEG),
+    derivative=Key("pressure_time_per_angle", "PID derivative gain on the rate error (null: placed on the prior)",
+                   default=None, unit="bar s/deg", **_NONNEG),
+    phase_margin=Key("angle", "phase margin the placed gains keep on the prior, pressure lag and delay included",
+                     default=math.radians(30.0), unit="deg", low=0, high=math.pi / 2, low_open=True, high_open=True),
+    gain_margin=Key("dimensionless", "gain margin the placed gains keep on the prior (factor on the loop gain)",
+                    default=2.0, low=1.0, high=20.0, low_open=True),
 )
 
 #: Declared layout of a pamjoint config (every key, its quantity, default, range and meaning).
@@ -238,6 +256,7 @@ SCHEMA: dict = {
     "prior": PRIOR_KEYS,
     "task": TASK_KEYS,
     "learning": LEARNING_KEYS,
+    "feedback": FEEDBACK_KEYS,
     "muscle_map": MUSCLE_MAP_KEYS,
 }
 

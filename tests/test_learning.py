@@ -244,8 +244,8 @@ def test_update_success_means_a_sound_step():
     _, _, result = learner.update(rollout, profile, state)
     assert result.success and result.accepted and result.status in (0, 1)
     assert result.predicted_cost < result.cost
-    # the guard: a trial far worse than the best is no sound step; the best profile is rerun
-    worse = replace(state, best_theta=state.theta, best_cost=result.cost / 10)
+    # the guard: a trial far worse than the last good one is no sound step; that profile is rerun
+    worse = replace(state, extra={"ref_cost": result.cost / 10, "ref_theta": state.theta})
     _, after, guarded = learner.update(rollout, profile, worse)
     assert (guarded.success, guarded.accepted, guarded.status) == (False, False, 2)
     assert after.theta == state.theta
