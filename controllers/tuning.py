@@ -105,7 +105,7 @@ def tune(setup, method: str, trials: int, seed: int, out, resume: bool = False, 
         row = {"trial": i, **{k: metrics[k] for k in METRIC_KEYS}, "settle_time_s": metrics["settle_time_s"],
                "fault": metrics["fault"], "cost": result.cost, "predicted_cost": result.predicted_cost,
                "update_status": result.status, "update_message": result.message,
-               "active_limits": result.active_constraints, **_diagnosis_fields(result)}
+               "active_limits": result.active_constraints, **diagnosis_fields(result)}
         rows.append(row)
         best = int(np.nanargmin([r["cost"] for r in rows]))
         write_json_atomic(out / "summary.json", _summary(setup, method, seed, trials, rows, best, 1 if i + 1 < trials else 0,
@@ -128,7 +128,7 @@ STRIKE_ANGLE_TOLERANCE_DEG = 0.2
 STRIKE_SPEED_TOLERANCE_PCT = 1.0
 
 
-def _diagnosis_fields(result) -> dict:
+def diagnosis_fields(result) -> dict:
     """What limited a trial's update, for its summary row."""
     d = result.diagnosis
     return {"boxed_knots": d.get("boxed_knots"), "boxed_in_strike_window": d.get("boxed_in_strike_window"),

@@ -295,6 +295,7 @@ def cmd_learn_step(args) -> int:
     """One learning step from a logged trial: the next profile for the rig."""
     from controllers.base import PressureProfile
     from controllers.rig import learn_step, load_state, state_path_for
+    from controllers.tuning import diagnosis_fields
     from .records import read_log, write_json_atomic
     from .simulation import Setup
 
@@ -311,7 +312,7 @@ def cmd_learn_step(args) -> int:
     write_json_atomic(state_file, new_state.to_dict())
     report = {"cost": result.cost, "predicted_cost": result.predicted_cost, "success": result.success,
               "status": result.status, "message": result.message, "accepted": result.accepted,
-              "active_limits": result.active_constraints,
+              "active_limits": result.active_constraints, "diagnosis": diagnosis_fields(result),
               "largest_change_kpa": result.step_norm_kpa, "profile": str(out), "state": str(state_file),
               "peak_command_kpa": float(new_profile.commands.max()) / 1e3,
               "safety": safety.GENERAL + " " + safety.HARDWARE}
@@ -328,6 +329,12 @@ def cmd_learn_step(args) -> int:
     print(f"update: {result.message}; cost {result.cost:.4g} -> predicted {result.predicted_cost:.4g}; "
           f"active limits {result.active_constraints}; largest change {result.step_norm_kpa:.1f} kPa; "
           f"peak command {report['peak_command_kpa']:.0f} kPa")
+    d = report["diagnosis"]
+    ratio = d["achieved_over_predicted"]
+    print(f"limits: {d['boxed_knots']} knots on the pressure limits ({d['boxed_in_strike_window']} shaping the strike), "
+          f"{d['angle_limits']} angle-limit samples; last step achieved "
+          f"{'-' if ratio is None else f'{ratio:.2f}'} of its predicted error change; prior re-identified: "
+          f"{', '.join(d['reidentified']) or 'none'}")
     print(f"wrote {out} and {state_file}")
     print(safety.GENERAL)
     print(safety.HARDWARE)
