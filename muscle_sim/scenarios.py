@@ -9,6 +9,9 @@ muscle's force-model error, trial-to-trial drift and the strike speed. It return
 ``pamjoint check`` and tuned like any other config. The draw depends only on the generator passed
 in: ``draw_scenario(base, numpy.random.default_rng(i))`` is draw ``i``, whatever else ran before.
 
+:func:`with_matched_prior` gives the same config with a prior as close to its plant as the prior's
+models go: a reference for whether a strike is within reach at all.
+
 The module lives beside the config code, not among the controllers, because it decides no
 pressures: it only makes configs.
 """
@@ -116,4 +119,20 @@ def draw_scenario(base_raw_config: dict, rng: np.random.Generator) -> dict:
         f"x{draws['delay_factor']:.3g} of the true one, braid friction x{draws['friction_factor']:.3g}, "
         f"sensor noise x{draws['noise_factor']:.3g}, force over-estimated by {100 * draws['force_error']:.3g} %, "
         f"strike speed {draws['strike_speed']:.3g} rad/s, " + ("drift on." if drifting else "no drift."))
+    return raw
+
+
+def with_matched_prior(raw_config: dict) -> dict:
+    """``raw_config`` with a prior as close to the plant as the prior's models go: the plant's
+    muscle (braid friction as the tanh law, the plant's force scale), payload, paddle inertia and
+    pivot friction, the valve flow model and the true delay. Only what the prior cannot represent
+    is left out (Maxwell-slip hysteresis, drift). The input is not modified."""
+    raw = copy.deepcopy(dict(raw_config))
+    plant_muscle = raw.get("plant", {}).get("muscle", {})
+    prior = raw.setdefault("prior", {})
+    prior.update({"muscle_model": "plant", "end_correction": None, "payload_known": True, "payload_mass": None,
+                  "payload_radius": None, "inertia_error": "0 %", "pivot_friction": True,
+                  "viscous_damping": None, "coulomb_torque": None,
+                  "force_scale": plant_muscle.get("force_scale", _config.MUSCLE_KEYS["force_scale"].default),
+                  "pressure_model": "valve", "pressure_delay": None})
     return raw

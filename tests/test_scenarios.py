@@ -1,5 +1,7 @@
 """Mismatch scenarios: the named configs in configs/scenarios/ and the seeded random draw."""
 import math
+import re
+from dataclasses import replace
 from pathlib import Path
 
 import numpy as np
@@ -11,7 +13,7 @@ from controllers.tuning import trial_rng
 from muscle_sim import cli, config
 from muscle_sim.pneumatics import tube_delay
 from muscle_sim.runs import run_trial
-from muscle_sim.scenarios import DRIFT_RANGES, DRIFT_SUPPLY_FLOOR, RANGES, draw_scenario
+from muscle_sim.scenarios import DRIFT_RANGES, DRIFT_SUPPLY_FLOOR, RANGES, draw_scenario, with_matched_prior
 from muscle_sim.simulation import Setup
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -25,12 +27,25 @@ def _demo_raw():
     return yaml.safe_load(DEMO.read_text())
 
 
-def _keys(node, prefix=""):
-    out = set()
+def _flat(node, prefix=""):
+    out = {}
     for name, value in node.items():
         path = f"{prefix}{name}"
-        out |= _keys(value, path + ".") if isinstance(value, dict) else {path}
+        out.update(_flat(value, path + ".") if isinstance(value, dict) else {path: value})
     return out
+
+
+def _changed_keys(text):
+    """Key paths of the lines marked CHANGED (two spaces of indent per level)."""
+    stack, changed = [], set()
+    for line in text.splitlines():
+        m = re.match(r"^( *)([A-Za-z_]+):", line)
+        if not m:
+            continue
+        stack = stack[: len(m.group(1)) // 2] + [m.group(2)]
+        if "# CHANGED" in line:
+            changed.add(".".join(stack))
+    return changed
 
 
 def _inside(value, low, high):
@@ -41,13 +56,19 @@ def _loaded():
     return {path.stem: config.load(path) for path in NAMED}
 
 
-def test_at_least_eight_named_scenarios_each_a_complete_config():
+def test_at_least_eight_named_scenarios_each_the_demo_with_its_marked_changes():
+    # Each file is a complete config (loads on its own) and resolves to the demo's values except
+    # at the lines it marks CHANGED (exact; name and description excepted).
     assert len(NAMED) >= 8
-    demo_keys = _keys(_demo_raw())
+    demo = _flat(config.load(DEMO).values)
     for path in NAMED:
-        raw = yaml.safe_load(path.read_text())
-        assert demo_keys <= _keys(raw), f"{path.name} lacks {sorted(demo_keys - _keys(raw))}"
-        assert raw["name"] and "invented" in path.read_text().splitlines()[0]
+        text = path.read_text()
+        assert "invented" in text.splitlines()[0]
+        changed = _changed_keys(text)
+        assert changed, path.name
+        values = _flat(config.load(path).values)
+        differ = {k for k in demo if values[k] != demo[k]} - {"name", "description"}
+        assert differ <= changed, f"{path.name}: unmarked changes {sorted(differ - changed)}"
 
 
 @pytest.mark.parametrize("path", NAMED, ids=[p.stem for p in NAMED])
@@ -154,3 +175,16 @@ def test_draws_cover_the_ranges_and_drift_both_ways():
     drifting = sum(config.drift_params(c).active for c in cfgs)
     assert 0 < drifting < 50
     assert all(math.isfinite(c.get("prior.pressure_delay")) for c in cfgs)
+
+
+@pytest.mark.parametrize("seed", [0, 3])
+def test_matched_prior_is_the_plant_where_the_prior_can_be(seed):
+    # Identity by construction: with the matched prior every parameter the prior models equals the
+    # plant's (exact; braid hysteresis and drift are what the prior cannot model).
+    raw = with_matched_prior(draw_scenario(_demo_raw(), np.random.default_rng(seed)))
+    cfg = config.load(raw)
+    plant, prior = config.plant_params(cfg), config.prior_params(cfg)
+    assert prior.joint == plant.joint
+    assert prior.muscle == plant.muscle          # the draws use the tanh law
+    # the lag model's time constant is not used by the valve model
+    assert replace(prior.pneumatics, lag_time_constant=plant.pneumatics.lag_time_constant) == plant.pneumatics
