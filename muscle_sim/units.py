@@ -29,6 +29,14 @@ UNITS: dict[str, dict[str, float]] = {
     "temperature": {"K": 1.0},
     "rate": {"1/s": 1.0},
     "pressure_rate": {"Pa/s": 1.0, "bar/s": 1e5, "kPa/s": 1e3},
+    # feedback gains: pressure per angle, per angle-time (integral), time per angle (derivative)
+    "pressure_per_angle": {"Pa/rad": 1.0, "kPa/rad": 1e3, "bar/rad": 1e5, "kPa/deg": 1e3 * 180.0 / math.pi,
+                           "bar/deg": 1e5 * 180.0 / math.pi},
+    "pressure_per_angle_time": {"Pa/(rad s)": 1.0, "kPa/(rad s)": 1e3, "bar/(rad s)": 1e5,
+                                "kPa/(deg s)": 1e3 * 180.0 / math.pi, "bar/(deg s)": 1e5 * 180.0 / math.pi},
+    "pressure_time_per_angle": {"Pa s/rad": 1.0, "kPa s/rad": 1e3, "bar s/rad": 1e5,
+                                "kPa s/deg": 1e3 * 180.0 / math.pi, "bar s/deg": 1e5 * 180.0 / math.pi,
+                                "bar ms/deg": 1e2 * 180.0 / math.pi},
     "dimensionless": {"": 1.0, "%": 0.01},
 }
 

@@ -73,3 +73,15 @@ def test_compare_writes_the_table_of_all_controllers(tmp_path, capsys):
         assert abs(learned[key]) < abs(model[key])
     assert "| learned |" in (out / "comparison.md").read_text()
     assert (out / "overlay_angle.png").exists()
+    # the feedback's gains were placed on the prior identified from the last learning trial
+    feedback = data["feedback"]
+    assert feedback["prior"] == "identified" and feedback["identified_from_trials"] == [7]
+    ident = feedback["identification"]
+    assert ident["residual_rms"] < ident["residual_rms_before"]
+    gains = feedback["gains"]
+    assert gains["success"] and gains["stable_on_prior"] and gains["set_by_config"] == []
+    # Common practice (defaults of the feedback section): at least 30 deg phase margin, gain margin 2.
+    assert gains["phase_margin_deg"] >= 30.0 - 1e-6 and gains["gain_margin"] >= 2.0
+    assert gains["proportional_bar_per_deg"] > 0 and gains["loop_delay_ms"] > 0
+    line = "Feedback gains" + " " + f"{gains['proportional_bar_per_deg']:.3g} bar/deg"
+    assert line in capsys.readouterr().out and line in (out / "comparison.md").read_text()

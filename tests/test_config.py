@@ -97,6 +97,54 @@ def test_bad_prior_values_are_one_line_with_path(key, value, expect):
     assert expect in msg
 
 
+@pytest.mark.parametrize("key, value, expect", [
+    ("proportional", "0.02 bar", "unit 'bar'"),
+    ("proportional", 0.02, "has no unit"),
+    ("proportional", "-0.01 bar/deg", "must be >= 0 bar/deg"),
+    ("integral", "0.1 bar/deg", "unit 'bar/deg'"),
+    ("integral", "-1 kPa/(deg s)", "must be >= 0 bar/(deg s)"),
+    ("derivative", "2 ms", "unit 'ms'"),
+    ("derivative", "-2 bar ms/deg", "must be >= 0 bar s/deg"),
+    ("phase_margin", "90 deg", "must be > 0 deg and < 90 deg"),
+    ("phase_margin", "0 deg", "must be > 0 deg and < 90 deg"),
+    ("phase_margin", 30, "has no unit"),
+    ("gain_margin", 1.0, "must be > 1 and <= 20"),
+    ("gain_margin", "6 dB", "unit 'dB'"),
+    ("gain_margin", None, "is not a quantity"),
+])
+def test_bad_feedback_values_are_one_line_with_path(key, value, expect):
+    raw = demo_raw()
+    raw.setdefault("feedback", {})[key] = value
+    msg = _error(raw)
+    assert msg.startswith(f"feedback.{key}:")
+    assert expect in msg
+
+
+def test_feedback_gains_and_targets_convert_to_si():
+    raw = demo_raw()
+    raw["feedback"] = {"proportional": "0.02 bar/deg", "integral": "5 kPa/(deg s)", "derivative": "2 bar ms/deg",
+                       "phase_margin": "45 deg", "gain_margin": 3}
+    fb = config.load(raw).get("feedback")
+    # Reference: exact unit definitions (1 bar = 1e5 Pa, 1 deg = pi/180 rad); tolerance 1e-12 relative.
+    per_deg = 180.0 / math.pi
+    assert fb["proportional"] == pytest.approx(0.02e5 * per_deg, rel=1e-12)
+    assert fb["integral"] == pytest.approx(5e3 * per_deg, rel=1e-12)
+    assert fb["derivative"] == pytest.approx(2e2 * per_deg, rel=1e-12)
+    assert fb["phase_margin"] == pytest.approx(math.pi / 4, rel=1e-12) and fb["gain_margin"] == 3
+
+
+def test_the_demo_documents_the_feedback_defaults():
+    # The demo shows the feedback section commented out; uncommented it must load to the defaults.
+    lines = DEMO.read_text().splitlines()
+    start = next(i for i, line in enumerate(lines) if line.startswith("# feedback:"))
+    stop = next(i for i in range(start, len(lines)) if not lines[i].startswith("#"))
+    documented = yaml.safe_load("\n".join(line[1:] for line in lines[start:stop]))
+    raw = demo_raw()
+    raw["feedback"] = documented["feedback"]
+    assert config.load(raw).get("feedback") == config.load(DEMO).get("feedback")
+    assert set(documented["feedback"]) == set(config.SCHEMA["feedback"])
+
+
 @pytest.mark.parametrize("muscle_model", ["ideal", "plant"])
 def test_prior_never_models_braid_hysteresis(muscle_model):
     # The plant may use Maxwell-slip braid friction; the prior keeps the simple tanh law (and with

@@ -105,13 +105,15 @@ def test_feedback_helps_alone_and_on_top_of_feedforward(demo_setup):
     assert PIDController().name == "feedback" and PIDController(feedforward=ff).name == "model-only+feedback"
     for m in (pid, ff_only, both):
         assert m["fault"] is None and m["commands_above_rated"] == 0
-    # Derived (measured on the demo, seed 0): holding home gives rms 27.1 deg, PID alone 4.5 deg;
-    # bound: PID cuts the rms at least 4-fold.
-    assert pid["rms_error_deg"] < 0.25 * hold["rms_error_deg"]
-    # Derived (measured): feedforward alone 9.9 deg, with PID on top 1.2 deg; bound 4-fold.
-    assert both["rms_error_deg"] < 0.25 * ff_only["rms_error_deg"]
-    # Derived (measured): strike angle error 9.0 deg alone, 2.7 deg with PID; bound: halved.
-    assert abs(both["strike_angle_error_deg"]) < 0.5 * abs(ff_only["strike_angle_error_deg"])
+    # The gains keep a 30 deg phase margin on the prior's pressure lag and delay; the prior's lag
+    # (15 ms) is slower than the plant's valves answer small errors, so they are cautious here.
+    # Derived (measured on the demo, seed 0): holding home gives rms 27.1 deg, PID alone 8.6 deg;
+    # bound: PID cuts the rms at least 2.5-fold.
+    assert pid["rms_error_deg"] < 0.4 * hold["rms_error_deg"]
+    # Derived (measured): feedforward alone 9.9 deg, with PID on top 2.4 deg; bound 3-fold.
+    assert both["rms_error_deg"] < ff_only["rms_error_deg"] / 3.0
+    # Derived (measured): strike angle error 9.0 deg alone, 5.7 deg with PID; bound: cut by a quarter.
+    assert abs(both["strike_angle_error_deg"]) < 0.75 * abs(ff_only["strike_angle_error_deg"])
 
 
 class _Recording(PIDController):
@@ -131,7 +133,9 @@ def test_anti_windup_keeps_the_integrator_bounded_with_a_tiny_rated_pressure():
     tiny = _demo_dict(plant__muscle__rated_pressure="0.6 bar", plant__pneumatics__supply_pressure="0.6 bar",
                       task__home_pressure="0.3 bar", learning__max_pressure="0.6 bar")
     setup = Setup.from_config(config.load(tiny))
-    pid = _Recording()
+    # stiff hand-set gains (those of a 6 Hz pole placement on the demo's double integrator) so the
+    # output saturates for most of the trial
+    pid = _Recording(kp=4.2e5, ki=1.6e6, kd=1.6e4)
     rollout, metrics = _trial(setup, pid)
     assert metrics["fault"] is None
     # Common practice (ISO 4414): commands stay within [0, rated] however large the error.
