@@ -10,7 +10,7 @@ muscle's force-model error, trial-to-trial drift and the strike speed. It return
 in: ``draw_scenario(base, numpy.random.default_rng(i))`` is draw ``i``, whatever else ran before.
 
 :func:`with_matched_prior` gives the same config with a prior as close to its plant as the prior's
-models go: a reference for whether a strike is within reach at all.
+models go: a second run with it can show that a strike is within the plant's reach.
 
 The module lives beside the config code, not among the controllers, because it decides no
 pressures: it only makes configs.
@@ -26,9 +26,10 @@ from . import config as _config
 from .pneumatics import tube_delay
 
 #: Ranges of a draw. ``log`` ranges are drawn uniformly in the logarithm (factors), the others
-#: uniformly. They span the named scenarios of ``configs/scenarios/`` (the strike speed stops
-#: short of the near-limit scenario's 16 rad/s, so that a draw combining it with a weak muscle
-#: and a heavy payload stays within what the muscles give at the rated pressure).
+#: uniformly. They span the named scenarios of ``configs/scenarios/``; the strike speed stops
+#: short of the near-limit scenario's 16 rad/s, yet a draw that combines a fast strike with a weak
+#: muscle, a heavy payload and long tubes can still come near or beyond what the muscles give
+#: within the rated pressure (the learning benchmark's matched-prior run helps to tell).
 RANGES = {
     "payload_factor": (0.5, 3.0, "log"),         # plant payload / payload the prior believes
     "inertia_error": (-0.5, 0.5, "uniform"),     # prior.inertia_error
