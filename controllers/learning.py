@@ -409,7 +409,10 @@ class GradientLearner:
         passed the guard, and that of a ``guard_floor`` error at every sample (noise and drift
         move small costs by large factors), or that aborted, falls back to that trial's profile with half the step;
         the rerun is measured afresh and becomes the reference, so the guard follows a drifting
-        plant and cannot lock. Step size: a trust region on the prior's predicted
+        plant and cannot lock. A rerun that comes back clearly worse than the same profile did
+        before (by more than the square root of the guard factor) shows the plant drifting: the
+        halving is undone and from then on worse trials are learned from, not rerun (a trial that
+        slammed a stop is still rerun). Step size: a trust region on the prior's predicted
         decrease (Nocedal & Wright 2006, Algorithm 4.1): the ratio of achieved to predicted
         decrease of the last step halves the step scale below 1/4 and doubles it above 3/4; a
         step is applied only where the prior predicts a decrease, halving the scale up to four
@@ -420,19 +423,27 @@ class GradientLearner:
         extra = state.extra
         aborted = len(rollout.t) < self.task.n_steps + 1
         ref_cost, ref_theta, rerun = extra.get("ref_cost"), extra.get("ref_theta"), extra.get("rerun", False)
+        drifting = bool(extra.get("drifting", False))
+        scale = state.step_scale
+        if rerun and ref_cost is not None and cost > math.sqrt(self.settings.guard_factor) * ref_cost:
+            # the very profile that passed before came back clearly worse: the plant drifted, the
+            # rejection was the plant's doing, not the step's; undo its halving and from now on
+            # learn from worse trials instead of rerunning profiles measured on an older plant
+            drifting = True
+            scale = extra.get("scale_before_guard", scale)
         guard_level = max(self.settings.guard_factor * ref_cost, self._guard_floor) if ref_cost is not None else None
-        if ref_cost is not None and not rerun and (aborted or cost > guard_level):
+        if ref_cost is not None and not rerun and (aborted or (cost > guard_level and not drifting)):
             new_state = LearnerState(theta=list(ref_theta), best_theta=state.best_theta, best_cost=state.best_cost,
                                      step_scale=max(0.5 * state.step_scale, 1.0 / 64), trial=state.trial + 1,
                                      extra={"rerun": True, "ref_cost": ref_cost, "ref_theta": ref_theta,
+                                            "scale_before_guard": state.step_scale, "drifting": drifting,
                                             "prior_values": extra.get("prior_values") or {}})
             result = UpdateResult(False, 2, STATUS_MESSAGES[2], cost, ref_cost, 0.0, 0, new_state.step_scale,
-                                  False, diagnosis={"guard": True, "reference_cost": ref_cost})
+                                  False, diagnosis={"guard": True, "reference_cost": ref_cost, "drifting": drifting})
             return self.profile(new_state.theta), new_state, result
         # this trial passed the guard: it is the reference the next one is judged by (re-measured
         # every trial, so a drifting plant moves the reference with it)
         ref_cost, ref_theta = cost, theta.tolist()
-        scale = state.step_scale
         e, e_rate = self.objective.errors(rollout)
         achieved_ratio = self._achieved_ratio(extra, e, e_rate)
         if achieved_ratio is not None:
@@ -497,7 +508,8 @@ class GradientLearner:
             status = 1 if (active or boxed) else 0
         new_state = LearnerState(theta=new_theta.tolist(), best_theta=best_theta, best_cost=best_cost,
                                  step_scale=scale, trial=state.trial + 1,
-                                 extra={"ref_cost": ref_cost, "ref_theta": ref_theta, "prior_values": prior_values})
+                                 extra={"ref_cost": ref_cost, "ref_theta": ref_theta, "prior_values": prior_values,
+                                        "drifting": drifting})
         if finite and n_avail == self.task.n_steps + 1:
             # what the prior says this step will do to the errors, for the next trial's ratio
             new_state.extra.update({"last_error": e.tolist(), "last_rate_error": float(e_rate),
@@ -507,7 +519,7 @@ class GradientLearner:
                      "boxed_in_strike_window": int(np.count_nonzero(at_box & self._strike_knots)),
                      "angle_limits": int(limits[0].shape[0]) if limits is not None else 0,
                      "achieved_over_predicted": achieved_ratio, "reidentified": reidentified,
-                     "prior_values": prior_values, "step_tries": tries}
+                     "prior_values": prior_values, "step_tries": tries, "drifting": drifting}
         result = UpdateResult(status in (0, 1), status, STATUS_MESSAGES[status], cost,
                               predicted if finite else cost, float(np.max(np.abs(applied))) / 1e3,
                               active + boxed, scale, finite and decreasing, diagnosis=diagnosis)
