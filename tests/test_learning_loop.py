@@ -91,3 +91,21 @@ def test_the_verdict_names_the_cause():
     assert verdict([_row(i, cost=10.0 ** -i, predicted=0.5 * 10.0 ** -i) for i in range(6)])["cause"] == "converging"
     assert all(v["next_action"] for v in (verdict(saturated), verdict(drift), verdict(mismatch), verdict(floor)))
     assert np.isfinite(len(verdict([])["message"]))
+
+
+def test_a_rerun_that_came_back_worse_marks_the_plant_as_drifting():
+    # derived from the guard's rule: the rerun profile measured clearly worse than before
+    # (beyond sqrt(guard_factor) times its reference) shows drift; the halving is undone and a
+    # later bad trial is learned from, not rerun
+    learner, state, profile, rollout = _first_trial(DEMO)
+    _, first, result = learner.update(rollout, profile, state)
+    stale = type(state)(theta=state.theta, step_scale=1.0,
+                        extra={"ref_cost": result.cost / 100, "ref_theta": state.theta})
+    _, after, guarded = learner.update(rollout, profile, stale)
+    assert guarded.status == 2 and after.step_scale == 0.5
+    _, drifting, rerun = learner.update(rollout, learner.profile(after.theta), after)
+    assert drifting.extra["drifting"] and rerun.step_scale == 1.0
+    worse = type(state)(theta=drifting.theta, step_scale=drifting.step_scale,
+                        extra={**drifting.extra, "ref_cost": result.cost / 100})
+    _, _, learned = learner.update(rollout, learner.profile(worse.theta), worse)
+    assert learned.status != 2
