@@ -14,6 +14,21 @@ DEMO = ROOT / "configs" / "flipper.yaml"
 DRIFT = ROOT / "configs" / "flipper-drift.yaml"
 
 
+def demo_config(**keys) -> dict:
+    """The demo config as a dict with ``section__key`` entries replaced (``plant__sensors={}``:
+    quiet sensors)."""
+    import yaml
+
+    raw = yaml.safe_load(DEMO.read_text(encoding="utf-8"))
+    for path, value in keys.items():
+        *head, last = path.split("__")
+        node = raw
+        for key in head:
+            node = node[key]
+        node[last] = value
+    return raw
+
+
 @pytest.fixture(scope="session")
 def demo_setup():
     return Setup.from_config(DEMO)

@@ -2,7 +2,6 @@
 import dataclasses
 
 import numpy as np
-import yaml
 
 from controllers.feedback import PIDController
 from controllers.feedforward import FeedforwardController, model_only_profile, pressures_for_torque
@@ -12,19 +11,12 @@ from muscle_sim.joint import contractions
 from muscle_sim.runs import run_trial
 from muscle_sim.simulation import Setup
 
-from conftest import DEMO
+from conftest import demo_config
 
 
 def _demo_dict(**sections):
-    """The demo config as a dict with sections replaced or updated (``plant.sensors`` style keys)."""
-    raw = yaml.safe_load(DEMO.read_text(encoding="utf-8"))
-    for path, value in sections.items():
-        *head, last = path.split("__")
-        node = raw
-        for key in head:
-            node = node[key]
-        node[last] = value
-    return raw
+    """The demo config as a dict with ``section__key`` entries replaced."""
+    return demo_config(**sections)
 
 
 def _quiet_setup():

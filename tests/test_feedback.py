@@ -6,7 +6,6 @@ import math
 
 import numpy as np
 import pytest
-import yaml
 from scipy import signal
 from scipy.interpolate import pade
 
@@ -19,19 +18,12 @@ from muscle_sim.joint import contractions
 from muscle_sim.runs import run_trial
 from muscle_sim.simulation import Setup, home_pressures
 
-from conftest import DEMO
+from conftest import demo_config
 
 
 def _setup(**keys):
     """The demo with ``section__key`` entries replaced (``plant__sensors={}``: quiet sensors)."""
-    raw = yaml.safe_load(DEMO.read_text(encoding="utf-8"))
-    for path, value in keys.items():
-        *head, last = path.split("__")
-        node = raw
-        for key in head:
-            node = node[key]
-        node[last] = value
-    return Setup.from_config(config.load(raw))
+    return Setup.from_config(config.load(demo_config(**keys)))
 
 
 def _slow_prior_setup(**keys):
