@@ -7,6 +7,8 @@ scale and pressure box as they are in a run; the lower pressure limit is raised 
 the box is active in every timed update (the JSON says on how many knots). Each timed trial is
 simulated and updated REPEATS times; the ratio is median update time over median trial time;
 ``linearise_s`` is the part spent linearising the prior (central differences of its one-step map).
+The learner's model update (re-identifying the prior each trial) is switched off here: its cost
+is that of `pamjoint identify` on one trial, measured by benchmarks/identify_cost.py.
 One process, BLAS pinned to one thread with threadpoolctl.
 Writes benchmarks/results/learner_cost.json. Goal: ratio <= 0.5 for every N.
 """
@@ -51,6 +53,7 @@ def _setup(demo: dict, n: int) -> Setup:
     raw["task"]["control_rate"] = f"{n / 0.8:g} Hz"
     raw["task"]["strike_time"] = "256 ms"       # a whole number of steps at every rate
     raw["learning"]["min_pressure"] = MIN_PRESSURE
+    raw["learning"]["update_prior"] = False       # the step alone; identify_cost times the model update
     return Setup.from_config(raw)
 
 
