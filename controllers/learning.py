@@ -48,6 +48,17 @@ MIN_RATIO_SCALE = 1.0 / 16
 SHRINK_BELOW = -1.0
 GROW_ABOVE = 0.5
 
+#: Least learning gain on the measured error. The gain is the share of the trial's cost that
+#: repeats from trial to trial, ``1 - c_n / c`` with ``c_n`` the cost of the non-repetitive part
+#: (sensor noise, drift spread) estimated from how far each trial's error change missed the
+#: prediction: a steady-state form of the Kalman gain of repetitive-error estimation (Schoellig,
+#: Mueller & D'Andrea 2012, Autonomous Robots 33, "Optimization-based iterative learning for
+#: precise quadrocopter trajectory tracking"), with the noise of two trials in each miss. It
+#: applies once a rerun has shown the plant drifting: on a plant that holds still the miss is
+#: mostly what the prior gets wrong, which the trust region already answers, and the full step
+#: is kept.
+MIN_LEARNING_GAIN = 0.25
+
 #: Penalty weight of the angle constraints in the step QP (rows of unit norm, steps in 10 kPa).
 PENALTY = 1e6
 
@@ -391,6 +402,18 @@ class GradientLearner:
         d_act_rate = e_rate - extra["last_rate_error"]
         return float(np.sum(W * d_act * d_pred) + w_rate * d_act_rate * d_rate) / denom
 
+    def _prediction_miss_cost(self, extra, e, e_rate):
+        """Half the weighted cost of how far the error change since the last trial missed what
+        the learner predicted for its step: the noise of two trials, plus what
+        the model got wrong. None when the last update made no step."""
+        change = extra.get("predicted_change")
+        if change is None or len(change) != len(e):
+            return None
+        miss = e - np.asarray(extra["last_error"]) - np.asarray(change)
+        miss_rate = e_rate - extra["last_rate_error"] - extra["predicted_rate_change"]
+        W, w_rate = self.objective.w_angle, self.objective.w_rate
+        return 0.25 * float(np.sum(W * miss * miss) + w_rate * miss_rate * miss_rate)
+
     def _step_for(self, H, grad, theta, scale, limits0):
         """Step at ``scale`` (norm-optimal: the change penalty grows as the scale shrinks)."""
         if self.settings.method == "gradient":
@@ -416,7 +439,8 @@ class GradientLearner:
         decrease (Nocedal & Wright 2006, Algorithm 4.1): the ratio of achieved to predicted
         decrease of the last step halves the step scale below 1/4 and doubles it above 3/4; a
         step is applied only where the prior predicts a decrease, halving the scale up to four
-        times to find one.
+        times to find one. On a drifting plant the step is further scaled by the learning gain
+        (:data:`MIN_LEARNING_GAIN`): the share of the trial's error that repeats.
         """
         theta = np.asarray(state.theta, dtype=float)
         cost = self.objective.cost(rollout)
@@ -437,6 +461,7 @@ class GradientLearner:
                                      step_scale=max(0.5 * state.step_scale, 1.0 / 64), trial=state.trial + 1,
                                      extra={"rerun": True, "ref_cost": ref_cost, "ref_theta": ref_theta,
                                             "scale_before_guard": state.step_scale, "drifting": drifting,
+                                            "noise_cost": extra.get("noise_cost"),
                                             "prior_values": extra.get("prior_values") or {}})
             result = UpdateResult(False, 2, STATUS_MESSAGES[2], cost, ref_cost, 0.0, 0, new_state.step_scale,
                                   False, diagnosis={"guard": True, "reference_cost": ref_cost, "drifting": drifting})
@@ -451,6 +476,12 @@ class GradientLearner:
                 scale = max(scale * 0.5, MIN_RATIO_SCALE)
             elif achieved_ratio > GROW_ABOVE:
                 scale = min(scale * 2.0, 1.0)
+        miss_cost = self._prediction_miss_cost(extra, e, e_rate)
+        noise_cost = extra.get("noise_cost")
+        if miss_cost is not None:
+            noise_cost = miss_cost if noise_cost is None else 0.5 * (noise_cost + miss_cost)
+        learning_gain = 1.0 if noise_cost is None or not cost > 0 or not drifting else \
+            min(max(1.0 - noise_cost / cost, MIN_LEARNING_GAIN), 1.0)
         best_cost, best_theta = state.best_cost, state.best_theta
         if best_cost is None or cost < best_cost:
             best_cost, best_theta = cost, theta.tolist()
@@ -485,7 +516,7 @@ class GradientLearner:
         step, active, solved, predicted, tries = 0.0, 0, False, cost, 0
         new_theta = theta
         while finite and tries < 5:
-            step, active, solved = self._step_for(H, grad, theta, scale, limits)
+            step, active, solved = self._step_for(H, grad, theta, scale * learning_gain, limits)
             new_theta = np.clip(theta + step, self.p_low, self.p_high)
             predicted = predict(new_theta - theta)
             tries += 1
@@ -509,7 +540,7 @@ class GradientLearner:
         new_state = LearnerState(theta=new_theta.tolist(), best_theta=best_theta, best_cost=best_cost,
                                  step_scale=scale, trial=state.trial + 1,
                                  extra={"ref_cost": ref_cost, "ref_theta": ref_theta, "prior_values": prior_values,
-                                        "drifting": drifting})
+                                        "drifting": drifting, "noise_cost": noise_cost})
         if finite and n_avail == self.task.n_steps + 1:
             # what the prior says this step will do to the errors, for the next trial's ratio
             new_state.extra.update({"last_error": e.tolist(), "last_rate_error": float(e_rate),
@@ -519,7 +550,8 @@ class GradientLearner:
                      "boxed_in_strike_window": int(np.count_nonzero(at_box & self._strike_knots)),
                      "angle_limits": int(limits[0].shape[0]) if limits is not None else 0,
                      "achieved_over_predicted": achieved_ratio, "reidentified": reidentified,
-                     "prior_values": prior_values, "step_tries": tries, "drifting": drifting}
+                     "prior_values": prior_values, "step_tries": tries, "drifting": drifting,
+                     "learning_gain": learning_gain}
         result = UpdateResult(status in (0, 1), status, STATUS_MESSAGES[status], cost,
                               predicted if finite else cost, float(np.max(np.abs(applied))) / 1e3,
                               active + boxed, scale, finite and decreasing, diagnosis=diagnosis)

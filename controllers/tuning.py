@@ -133,7 +133,8 @@ def diagnosis_fields(result) -> dict:
     d = result.diagnosis
     return {"boxed_knots": d.get("boxed_knots"), "boxed_in_strike_window": d.get("boxed_in_strike_window"),
             "angle_limits": d.get("angle_limits"), "achieved_over_predicted": d.get("achieved_over_predicted"),
-            "reidentified": d.get("reidentified", []), "guard": bool(d.get("guard", False))}
+            "reidentified": d.get("reidentified", []), "guard": bool(d.get("guard", False)),
+            "learning_gain": d.get("learning_gain")}
 
 
 def strike_reached(row) -> bool:

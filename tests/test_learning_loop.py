@@ -1,4 +1,5 @@
 """The learner's loop around the step: guard, trust region, model updating and the verdict."""
+import pytest
 import yaml
 
 import numpy as np
@@ -109,3 +110,26 @@ def test_a_rerun_that_came_back_worse_marks_the_plant_as_drifting():
                         extra={**drifting.extra, "ref_cost": result.cost / 100})
     _, _, learned = learner.update(rollout, learner.profile(worse.theta), worse)
     assert learned.status != 2
+
+
+def test_on_a_drifting_plant_the_step_shrinks_by_the_share_of_the_error_that_repeats():
+    # derived from the steady-state Kalman gain of repetitive-error estimation (Schoellig, Mueller
+    # & D'Andrea 2012): gain = 1 - c_n / c, with the non-repetitive cost c_n = half the cost of the
+    # miss between the achieved and the predicted error change (two trials' noise). A miss set to
+    # carry half the trial's cost gives gain 1/2; without evidence of drift the full step is kept
+    learner, state, profile, rollout = _first_trial(DEMO)
+    e, e_rate = learner.objective.errors(rollout)
+    cost = learner.objective.cost(rollout)
+    W = learner.objective.w_angle
+    n = np.sin(np.arange(e.size) * 0.7)
+    n *= np.sqrt(0.5 * cost / (0.25 * float(np.sum(W * n * n))))        # 0.25 sum W n^2 = cost / 2
+    record = {"last_error": (e - n).tolist(), "last_rate_error": float(e_rate),
+              "predicted_change": np.zeros(e.size).tolist(), "predicted_rate_change": 0.0}
+    results = {}
+    for drifting in (False, True):
+        start = type(state)(theta=state.theta, extra={**record, "drifting": drifting})
+        _, after, results[drifting] = learner.update(rollout, profile, start)
+        assert after.extra["noise_cost"] == pytest.approx(cost / 2, rel=1e-9)
+    assert results[False].diagnosis["learning_gain"] == 1.0
+    assert results[True].diagnosis["learning_gain"] == pytest.approx(0.5, rel=1e-9)
+    assert results[True].step_norm_kpa < 0.75 * results[False].step_norm_kpa
