@@ -15,12 +15,11 @@ from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any, Mapping
 
-import yaml
-
 from .errors import ConfigError, ParameterError
 from .params import JointParams, McKibbenParams, PlantParams, PneumaticParams
 from .pneumatics import tube_delay, tube_volume
 from .units import UNITS, UnitError, allowed_units, to_si
+from .yaml_input import parse_yaml_bytes
 
 _REQUIRED = object()
 
@@ -363,15 +362,10 @@ def load(source) -> Config:
     if isinstance(source, (str, Path)):
         path = Path(source)
         try:
-            text = path.read_text(encoding="utf-8")
+            data = path.read_bytes()
         except OSError as exc:
             raise ConfigError(f"config: cannot read {str(path)!r}: {exc.strerror or exc}") from None
-        try:
-            raw = yaml.safe_load(text)
-        except yaml.YAMLError as exc:
-            mark = getattr(exc, "problem_mark", None)
-            where = f" at line {mark.line + 1}" if mark is not None else ""
-            raise ConfigError(f"config: {str(path)!r} is not valid YAML{where}") from None
+        raw = parse_yaml_bytes(data, f"config {str(path)!r}")
         name = str(path)
     elif isinstance(source, Mapping):
         raw, name = copy.deepcopy(dict(source)), "<mapping>"

@@ -13,7 +13,7 @@ ROOT = Path(__file__).resolve().parents[1]
 
 LAYERS = {
     "base": ["muscle_sim.errors", "muscle_sim.units", "muscle_sim.compiled", "muscle_sim.threads",
-             "muscle_sim.safety"],
+             "muscle_sim.safety", "muscle_sim.yaml_input"],
     "physics": ["muscle_sim.params", "muscle_sim.muscle", "muscle_sim.pneumatics", "muscle_sim.joint",
                 "muscle_sim.hysteresis", "muscle_sim.plant", "muscle_sim.integrate", "muscle_sim.sensors",
                 "muscle_sim.drift"],
