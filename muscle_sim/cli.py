@@ -558,10 +558,22 @@ def cmd_plan(args) -> int:
     return 0
 
 
+def _package_version() -> str:
+    """The installed distribution's version (the source tree's when run uninstalled)."""
+    from importlib.metadata import PackageNotFoundError, version
+
+    from . import __version__
+    try:
+        return version("pamjoint")
+    except PackageNotFoundError:
+        return __version__
+
+
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser of all sub-commands."""
     parser = _Parser(prog="pamjoint", description="Antagonistic McKibben muscle joints: sizing, "
                      "simulation and learned feedforward control.")
+    parser.add_argument("--version", action="version", version=f"pamjoint {_package_version()}")
     sub = parser.add_subparsers(dest="command", required=True, parser_class=_Parser)
 
     p = sub.add_parser("muscle", help="force table and force map of the configured muscle")

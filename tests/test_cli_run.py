@@ -97,3 +97,11 @@ def test_check_prints_si_values(capsys):
     assert data["values"]["plant"]["muscle"]["rest_length"] == pytest.approx(0.25)
     assert data["derived"]["control_steps"] == 400
     assert np.isclose(data["values"]["task"]["strike_speed"], 12.0)
+
+
+def test_version_is_the_package_version():
+    # reference: the distribution metadata written by pip from pyproject.toml (importlib.metadata)
+    from importlib.metadata import version
+    done = subprocess.run([sys.executable, "-m", "muscle_sim.cli", "--version"], capture_output=True, text=True,
+                          timeout=120)
+    assert done.returncode == 0 and done.stdout.strip() == f"pamjoint {version('pamjoint')}"
