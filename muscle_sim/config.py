@@ -357,6 +357,16 @@ def _resolve(schema: dict, raw: Any, path: str) -> dict:
     return out
 
 
+def shipped_config(name: str = "flipper.yaml") -> Path:
+    """Path of a config shipped with pamjoint: the installed package data
+    (``muscle_sim/demo_configs``), else the source tree's ``configs/`` folder."""
+    here = Path(__file__).resolve().parent
+    for folder in (here / "demo_configs", here.parent / "configs"):
+        if (folder / name).is_file():
+            return folder / name
+    return here.parent / "configs" / name
+
+
 def load(source) -> Config:
     """Read and validate a config from a YAML path or an already-parsed mapping."""
     if isinstance(source, (str, Path)):

@@ -2,18 +2,18 @@
 from __future__ import annotations
 
 import math
-from pathlib import Path
 
 import gymnasium as gym
 import numpy as np
 from gymnasium import spaces
 
 from .compiled import law
+from .config import shipped_config
 from .errors import SimulationDiverged
 from .simulation import Setup, StrikeTrial
 from .tasks import FAULT_PENALTY, reference, reward_at, strike_metrics
 
-DEMO_CONFIG = Path(__file__).resolve().parent.parent / "configs" / "flipper.yaml"
+DEMO_CONFIG = shipped_config("flipper.yaml")
 RATE_BOUND = 60.0  # rad/s, observation bound of the angular rate
 
 

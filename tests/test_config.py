@@ -186,3 +186,21 @@ def test_bad_yaml_file(tmp_path):
     bad = tmp_path / "bad.yaml"
     bad.write_text("plant: [unclosed\n")
     assert "not valid YAML" in _error(bad)
+
+
+def test_every_shipped_config_is_package_data():
+    # reference: setuptools' package-dir / package-data tables in pyproject.toml (what a plain
+    # `pip install .` copies); every YAML under configs/ must be covered so the env id and the
+    # scenarios are found from any folder after installing
+    tomllib = pytest.importorskip("tomllib")
+    from pathlib import Path
+
+    from muscle_sim.config import load, shipped_config
+    root = Path(__file__).resolve().parents[1]
+    tool = tomllib.loads((root / "pyproject.toml").read_text())["tool"]["setuptools"]
+    folders = {Path(v) for k, v in tool["package-dir"].items() if tool["package-data"].get(k) == ["*.yaml"]}
+    for path in (root / "configs").rglob("*.yaml"):
+        assert path.parent.relative_to(root) in folders, path
+        assert set(tool["package-dir"]) <= set(tool["packages"])
+    assert shipped_config("flipper.yaml").is_file()
+    load(shipped_config("flipper.yaml"))
