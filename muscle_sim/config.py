@@ -17,6 +17,7 @@ from typing import Any, Mapping
 
 from .errors import ConfigError, ParameterError
 from .params import JointParams, McKibbenParams, PlantParams, PneumaticParams
+from .plant import holding_pressures
 from .pneumatics import tube_delay, tube_volume
 from .units import UNITS, UnitError, allowed_units, to_si
 from .yaml_input import parse_yaml_bytes
@@ -195,8 +196,10 @@ TASK_KEYS = _section(
     settle_time=Key("time", "by when the paddle must have settled at home", unit="ms", **_POS),
     settle_tolerance=Key("angle", "band around home that counts as settled", default=math.radians(1.0),
                          unit="deg", **_POS),
-    trial_length=Key("time", "length of one trial (episode)", unit="ms", **_POS),
-    control_rate=Key("frequency", "control (and sampling) rate", default=500.0, unit="Hz", **_POS),
+    trial_length=Key("time", "length of one trial (episode), at most a minute", unit="ms", low=0, low_open=True,
+                     high=60.0),
+    control_rate=Key("frequency", "control (and sampling) rate, 10 Hz to 20 kHz", default=500.0, unit="Hz",
+                     low=10.0, high=20000.0),
     n_substeps=Key("int", "RK4 physics sub-steps per control step", default=2, low=1, high=1000),
     home_pressure=Key("pressure", "co-contraction: the weaker muscle's pressure holding home", default=2e5,
                       unit="bar", low=0),
@@ -429,11 +432,37 @@ def _check_cross(cfg: Config) -> None:
     if learn["max_pressure"] is not None and learn["min_pressure"] >= learn["max_pressure"]:
         raise ConfigError(f"learning.min_pressure: {learn['min_pressure'] / 1e5:g} bar is not allowed; must be < "
                           f"learning.max_pressure {learn['max_pressure'] / 1e5:g} bar")
-    plant_params(cfg)
-    prior_params(cfg)
+    for section, params in (("plant", plant_params(cfg)), ("prior", prior_params(cfg))):
+        _check_home_hold(task, params, section, muscle.rated_pressure)
     sensor_params(cfg)
     drift_params(cfg)
     strike_task(cfg)
+
+
+def _check_home_hold(task: dict, params: PlantParams, section: str, rated: float) -> None:
+    """The pressures that hold home (the trial's start) lie within the supply and the rating."""
+    top = min(params.pneumatics.supply_pressure, rated)
+
+    def hold(base):
+        return holding_pressures(params, task["home_angle"], base)
+
+    try:
+        pa, pb = hold(task["home_pressure"])
+    except ValueError:
+        raise ConfigError(f"task.home_angle: {math.degrees(task['home_angle']):g} deg is not allowed; the "
+                          f"{section}'s muscles cannot hold it (one is slack or fully contracted)") from None
+    if max(pa, pb) <= top:
+        return
+    low, high = 0.0, task["home_pressure"]           # the largest co-contraction that fits (bisection)
+    for _ in range(50):
+        mid = 0.5 * (low + high)
+        low, high = (mid, high) if max(hold(mid)) <= top else (low, mid)
+    fits = f"must be at most {math.floor(low / 1e3) / 100:g} bar" if max(hold(0.0)) <= top else \
+        "no co-contraction fits: the home angle needs more than the supply"
+    raise ConfigError(f"task.home_pressure: {task['home_pressure'] / 1e5:g} bar is not allowed; holding "
+                      f"task.home_angle {math.degrees(task['home_angle']):g} deg on the {section} then needs "
+                      f"muscle A {pa / 1e5:.3g} bar and muscle B {pb / 1e5:.3g} bar, above the supply or rating "
+                      f"{top / 1e5:g} bar; {fits}")
 
 
 def muscle_params(cfg: Config, section: str = "plant.muscle") -> McKibbenParams:

@@ -274,6 +274,11 @@ class PlantParams:
         if eps0 >= eps_max:
             _fail("JointParams", "pre_contraction", eps0, f"< {eps_max:g} (the muscle's maximum contraction)")
         travel = self.joint.pulley_radius * max(abs(self.joint.lower_stop), self.joint.upper_stop)
+        if eps0 - travel / self.muscle.rest_length <= 0.0:
+            # the muscle on the far side goes slack before the stop: it can neither pull nor hold
+            _fail("JointParams", "pre_contraction", eps0,
+                  f"> {travel / self.muscle.rest_length:.3g} (pulley travel to the farther stop over the rest "
+                  f"length), so both muscles stay taut over the whole stop range")
         if eps0 + travel / self.muscle.rest_length >= eps_max:
             _fail("JointParams", "pulley_radius", self.joint.pulley_radius,
                   f"small enough that the muscle's contraction at the stops stays below {eps_max:g} "
