@@ -194,6 +194,10 @@ def cmd_run(args) -> int:
     setup = Setup.from_config(args.config)
     controller = _make_controller(args)
     controller.reset(setup)      # validates a replayed profile before anything is written
+    pressures = getattr(controller, "pressures", None)
+    if pressures is not None and max(pressures) > setup.rated_pressure:
+        raise BadInput(f"--pressures: {max(pressures) / 1e5:g} bar is not allowed; must be <= the rated pressure "
+                       f"{setup.rated_pressure / 1e5:g} bar (plant.muscle.rated_pressure)")
     out = _out_dir(args, "run")
     summary = run_episodes(setup, controller, args.episodes, args.seed, out,
                            progress=None if args.json else sys.stderr)
@@ -205,7 +209,8 @@ def cmd_run(args) -> int:
         print(f"{row['episode']:>7} {row['rms_error_deg']:>10.3f} {row['strike_angle_error_deg']:>23.3f} "
               f"{row['strike_speed_error_pct']:>14.2f} {row['peak_pressure_kpa']:>11.1f}"
               + (f"  FAULT: {row['fault']}" if row["fault"] else ""))
-    _print_cautions(setup)
+    for line in summary["cautions"]:
+        print(line)
     print(f"wrote {out}/summary.json, rollouts/ and plots")
     print(safety.GENERAL)
     return 0

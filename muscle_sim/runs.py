@@ -25,8 +25,12 @@ def run_trial(setup: Setup, controller, trial: int, rng: np.random.Generator, se
     task = setup.task
     fault = None
     limit = (setup.plant.joint.lower_stop - task.fault_depth, setup.plant.joint.upper_stop + task.fault_depth)
+    above_rated, peak_requested = 0, 0.0
     while not sim.done:
         u = controller.command(sim.k, sim.k * task.dt, y)
+        requested = max(float(u[0]), float(u[1]))
+        above_rated += requested > setup.rated_pressure
+        peak_requested = max(peak_requested, requested)
         u = (min(max(float(u[0]), 0.0), sim.params.pneumatics.supply_pressure),
              min(max(float(u[1]), 0.0), sim.params.pneumatics.supply_pressure))
         try:
@@ -40,8 +44,21 @@ def run_trial(setup: Setup, controller, trial: int, rng: np.random.Generator, se
     rollout = sim.rollout(controller=getattr(controller, "name", ""), seed=seed)
     metrics = strike_metrics(task, rollout.measured[:, 0], rollout.measured[:, 1], rollout.measured[:, 2:4])
     metrics["fault"] = fault
-    metrics["commands_above_rated"] = int(np.count_nonzero(rollout.command > setup.rated_pressure))
+    # what the controller asked, before the valves limit it to [0, supply]: the rollout logs
+    # the applied commands, these two say what was requested
+    metrics["commands_above_rated"] = int(above_rated)
+    metrics["peak_command_requested_kpa"] = peak_requested / 1e3
     return rollout, metrics
+
+
+def command_cautions(setup: Setup, rows: list, label: str = "episode") -> list:
+    """One caution per trial whose controller asked for more than the rated pressure."""
+    rated = setup.rated_pressure
+    return [f"CAUTION: {label} {r[label]} asked {r['commands_above_rated']} sample(s) above the rated pressure "
+            f"{rated / 1e5:g} bar (peak {r['peak_command_requested_kpa'] / 100:.3g} bar); the simulated valves "
+            f"applied at most the supply {setup.plant.pneumatics.supply_pressure / 1e5:g} bar. "
+            + safety.over_rated(r["peak_command_requested_kpa"] / 100, rated / 1e5)
+            for r in rows if r.get("commands_above_rated")]
 
 
 def _progress(i: int, n: int, m: dict, stream) -> None:
@@ -85,6 +102,7 @@ def run_episodes(setup: Setup, controller, episodes: int, seed: int, out: Path, 
     cautions = []
     if setup.over_rated:
         cautions.append(safety.over_rated(setup.plant.pneumatics.supply_pressure / 1e5, setup.rated_pressure / 1e5))
+    cautions += command_cautions(setup, rows)
     summary = {"config": setup.config.source, "config_hash": setup.config.digest, "seed": seed,
                "controller": controller.name, "episodes": rows, "cautions": cautions, "safety": safety.GENERAL}
     write_json_atomic(out / "summary.json", summary)

@@ -105,3 +105,26 @@ def test_version_is_the_package_version():
     done = subprocess.run([sys.executable, "-m", "muscle_sim.cli", "--version"], capture_output=True, text=True,
                           timeout=120)
     assert done.returncode == 0 and done.stdout.strip() == f"pamjoint {version('pamjoint')}"
+
+
+def test_pressures_above_the_rating_are_refused_or_counted_with_a_caution(tmp_path, capsys):
+    # common practice (ISO 4414 spirit): never command a muscle above its rated pressure; the demo
+    # muscle is rated 6 bar. A step to 8 bar is refused before anything is written ...
+    code = cli.main(["run", str(DEMO), "--controller", "step", "--pressures", "8,1 bar", "--out",
+                     str(tmp_path / "refused")])
+    err = capsys.readouterr().err
+    assert code == 2 and "--pressures: 8 bar is not allowed" in err and len(err.strip().splitlines()) == 1
+    assert not (tmp_path / "refused").exists()
+    # ... a replayed profile asking 7 bar for 50 samples runs, each sample counted, with a caution
+    t = np.arange(400) * 0.002
+    commands = np.full((400, 2), 2e5)
+    commands[100:150, 0] = 7e5
+    PressureProfile(t, commands).write_csv(tmp_path / "high.csv")
+    out = tmp_path / "run"
+    assert cli.main(["run", str(DEMO), "--controller", "replay", "--profile", str(tmp_path / "high.csv"),
+                     "--out", str(out)]) == 0
+    summary = json.loads((out / "summary.json").read_text())
+    row = summary["episodes"][0]
+    assert row["commands_above_rated"] == 50 and abs(row["peak_command_requested_kpa"] - 700.0) < 1e-9
+    assert any("50 sample(s) above the rated pressure 6 bar" in c for c in summary["cautions"])
+    assert "CAUTION" in capsys.readouterr().out
