@@ -266,7 +266,8 @@ def main(argv=None) -> dict:
                               f"{STRIKE_BY}",
                "faults": f"trials after trial {FAULTS_AFTER} ending in an end-stop slam or divergence",
                "drift": f"every RMS of trials {DRIFT_WINDOW[0]}..{DRIFT_WINDOW[1]} <= {DRIFT_FACTOR:g} x the best "
-                        f"RMS so far ({DRIFT_TRIALS} trials where the plant drifts)",
+                        f"RMS so far, taken no lower than the best noise-floor replay ({DRIFT_TRIALS} trials where "
+                        f"the plant drifts; drift_worst_ratio_to_best_trial gives the strict ratio)",
                "tune": f"controllers.tuning.tune(setup, 'norm-optimal', {TRIALS} (or {DRIFT_TRIALS}), seed={SEED})",
                "draw_i": "muscle_sim.scenarios.draw_scenario(configs/flipper.yaml, numpy.random.default_rng(i))",
                "matched_prior": "the same tune run with muscle_sim.scenarios.with_matched_prior",
