@@ -4,10 +4,11 @@ from __future__ import annotations
 import argparse
 import json
 import math
-
-import numpy as np
+import shutil
 import sys
 from pathlib import Path
+
+import numpy as np
 
 from . import safety
 from .errors import ConfigError, DataError, ParameterError
@@ -71,6 +72,16 @@ def _out_dir(args, kind: str) -> Path:
 
     if args.out:
         out = Path(args.out)
+        if out.exists() and not out.is_dir():
+            raise BadInput(f"--out: {str(out)!r} is a file; must name a folder")
+        if out.is_dir() and any(out.iterdir()):
+            if not getattr(args, "overwrite", False):
+                raise BadInput(f"--out: {str(out)!r} is not empty; name a new folder, or pass --overwrite to "
+                               f"replace an earlier pamjoint run there (tune: --resume continues one)")
+            if not (out / "summary.json").is_file():
+                raise BadInput(f"--out: {str(out)!r} holds no pamjoint run (no summary.json); --overwrite only "
+                               f"replaces a run folder")
+            shutil.rmtree(out)
         out.mkdir(parents=True, exist_ok=True)
         return out
     return new_run_dir(kind)
@@ -574,6 +585,11 @@ def _package_version() -> str:
         return __version__
 
 
+def _add_out(p) -> None:
+    p.add_argument("--out", help="output folder, new or empty (default: a new folder under runs/)")
+    p.add_argument("--overwrite", action="store_true", help="replace an earlier pamjoint run in --out")
+
+
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser of all sub-commands."""
     parser = _Parser(prog="pamjoint", description="Antagonistic McKibben muscle joints: sizing, "
@@ -585,7 +601,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("config", help="YAML config (the plant.muscle section is used)")
     p.add_argument("--pressures", help="gauge pressures to tabulate, e.g. '1,2,3,4,5,6 bar' "
                    "(default: muscle_map.pressures, else 1 bar steps up to the rated pressure)")
-    p.add_argument("--out", help="output folder (default: a new folder under runs/)")
+    _add_out(p)
     p.add_argument("--json", action="store_true", help="print the numbers as JSON")
     p.set_defaults(func=cmd_muscle)
 
@@ -604,7 +620,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--step-at", default="100 ms", help="when the step controller switches (default 100 ms)")
     p.add_argument("--profile", help="profile CSV for --controller replay")
     p.add_argument("--seed", type=int, default=0, help="random seed (sensor noise, drift), default 0")
-    p.add_argument("--out", help="output folder (default: a new folder under runs/)")
+    _add_out(p)
     p.add_argument("--json", action="store_true", help="print the summary as JSON")
     p.set_defaults(func=cmd_run)
 
@@ -615,7 +631,7 @@ def build_parser() -> argparse.ArgumentParser:
                    help="update rule (default: learning.method)")
     p.add_argument("--start", help="profile CSV to start from (default: model-only feedforward)")
     p.add_argument("--seed", type=int, default=0, help="random seed, default 0")
-    p.add_argument("--out", help="output folder (default: a new folder under runs/)")
+    _add_out(p)
     p.add_argument("--resume", metavar="DIR", help="continue an interrupted tune run in DIR")
     p.add_argument("--json", action="store_true", help="print the summary as JSON")
     p.set_defaults(func=cmd_tune)
@@ -625,7 +641,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--trials", type=int, help="learning trials (default: learning.trials)")
     p.add_argument("--method", choices=("norm-optimal", "gradient"), help="learner (default: learning.method)")
     p.add_argument("--seed", type=int, default=0, help="random seed, default 0")
-    p.add_argument("--out", help="output folder (default: a new folder under runs/)")
+    _add_out(p)
     p.add_argument("--json", action="store_true", help="print the comparison as JSON")
     p.set_defaults(func=cmd_compare)
 
@@ -647,7 +663,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--rest-length", help="rest length, e.g. '250 mm' (without --config)")
     p.add_argument("--rest-radius", help="rest braid radius, e.g. '8 mm' (without --config)")
     p.add_argument("--braid-angle", default="20 deg", help="first guess of the rest braid angle (without --config)")
-    p.add_argument("--out", help="output folder (default: a new folder under runs/)")
+    _add_out(p)
     p.add_argument("--json", action="store_true", help="print the report as JSON")
     p.set_defaults(func=cmd_calibrate)
 
@@ -660,7 +676,7 @@ def build_parser() -> argparse.ArgumentParser:
                    "pressure_time_constant, payload_mass, viscous_damping, coulomb_torque, payload_radius, "
                    "force_scale)")
     p.add_argument("--resample", action="store_true", help="resample irregular logs onto the control grid")
-    p.add_argument("--out", help="output folder (default: a new folder under runs/)")
+    _add_out(p)
     p.add_argument("--json", action="store_true", help="print the report as JSON")
     p.set_defaults(func=cmd_identify)
 
@@ -670,7 +686,7 @@ def build_parser() -> argparse.ArgumentParser:
                    help="cost to minimise (default peak-pressure)")
     p.add_argument("--max-pressure-rate", help="limit of the command rate, e.g. '100 bar/s' (default none)")
     p.add_argument("--iterations", type=int, default=150, help="optimiser iterations (default 150)")
-    p.add_argument("--out", help="output folder (default: a new folder under runs/)")
+    _add_out(p)
     p.add_argument("--json", action="store_true", help="print the report as JSON")
     p.set_defaults(func=cmd_plan)
     return parser
@@ -690,6 +706,10 @@ def main(argv=None) -> int:
     except BrokenPipeError:          # output piped into e.g. `head`: not an error of ours
         sys.stderr.close()
         return 0
+    except OSError as exc:           # read-only folder, full disk, missing file: one line, no traceback
+        where = f" {exc.filename!r}" if exc.filename else ""
+        print(f"pamjoint {args.command}: error: cannot use{where}: {exc.strerror or exc}", file=sys.stderr)
+        return EXIT_BAD_INPUT
     except KeyboardInterrupt:
         print(f"pamjoint {args.command}: interrupted; finished files are complete, none is half-written",
               file=sys.stderr)

@@ -9,6 +9,13 @@ import tempfile
 from pathlib import Path
 
 
+def _umask() -> int:
+    """The process's file-creation mask (read by setting it and putting it back)."""
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
+
+
 def write_bytes_atomic(path, data: bytes) -> Path:
     """Write ``data`` to ``path`` through a temporary file and ``os.replace``: readers see the
     old file or the whole new one, never a half-written file (also after kill -9)."""
@@ -16,6 +23,7 @@ def write_bytes_atomic(path, data: bytes) -> Path:
     path.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=path.parent)
     try:
+        os.fchmod(fd, 0o666 & ~_umask())       # as open() would create it, not mkstemp's 0600
         with os.fdopen(fd, "wb") as fh:
             fh.write(data)
             fh.flush()

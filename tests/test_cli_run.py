@@ -128,3 +128,41 @@ def test_pressures_above_the_rating_are_refused_or_counted_with_a_caution(tmp_pa
     assert row["commands_above_rated"] == 50 and abs(row["peak_command_requested_kpa"] - 700.0) < 1e-9
     assert any("50 sample(s) above the rated pressure 6 bar" in c for c in summary["cautions"])
     assert "CAUTION" in capsys.readouterr().out
+
+
+def test_run_folders_are_never_mixed_and_files_honour_the_umask(tmp_path, capsys):
+    # common practice: a results folder holds one run; files are created as open() would create
+    # them (mode 0666 minus the umask), so a rig controller under another account can read them
+    import os
+    out = tmp_path / "run"
+    old = os.umask(0o022)
+    try:
+        assert cli.main(["run", str(DEMO), "--out", str(out)]) == 0
+    finally:
+        os.umask(old)
+    assert (out / "summary.json").stat().st_mode & 0o777 == 0o644
+    capsys.readouterr()
+    assert cli.main(["run", str(DEMO), "--out", str(out)]) == 2
+    assert "is not empty" in capsys.readouterr().err
+    (out / "stale.txt").write_text("from an earlier run")
+    assert cli.main(["run", str(DEMO), "--out", str(out), "--overwrite"]) == 0
+    assert not (out / "stale.txt").exists()
+    other = tmp_path / "mine"
+    other.mkdir()
+    (other / "notes.txt").write_text("not a run")
+    assert cli.main(["run", str(DEMO), "--out", str(other), "--overwrite"]) == 2
+    assert (other / "notes.txt").exists()
+    assert cli.main(["run", str(DEMO), "--out", str(other / "notes.txt")]) == 2
+    err = capsys.readouterr().err
+    assert "no summary.json" in err and "is a file" in err
+
+
+def test_a_folder_the_system_refuses_gives_one_line(tmp_path, capsys):
+    # derived: the operating system refuses to make the folder (a file stands where a parent
+    # folder should be; a read-only folder or a full disk raise the same kind of error); the
+    # command names it and exits 2
+    blocker = tmp_path / "blocker"
+    blocker.write_text("a file")
+    assert cli.main(["run", str(DEMO), "--out", str(blocker / "run")]) == 2
+    err = capsys.readouterr().err
+    assert len(err.strip().splitlines()) == 1 and "cannot use" in err and "Traceback" not in err
