@@ -39,18 +39,35 @@ def learn_step(setup, log, profile: PressureProfile, state: LearnerState | None 
     learner = make_learner(setup, method, 1, 0)
     if state is None:
         state = learner.initial_state(profile)
+    theta = np.asarray(state.theta, dtype=float) if isinstance(state.theta, list) else np.zeros(0)
+    if theta.shape != (learner.basis.n_params,) or not np.all(np.isfinite(theta)):
+        raise DataError(f"--state: theta must be {learner.basis.n_params} finite knot values for this config's "
+                        f"trial; this state holds {theta.size} (a state of another config, or damaged)")
     expected = learner.profile(state.theta).commands
     if expected.shape != profile.commands.shape or np.max(np.abs(expected - profile.commands)) > 10.0:
         raise DataError("--profile: does not match --state (the state's knots give another profile); "
                         "pass the state saved beside this profile")
     if log.command.shape[0] - 1 > task.n_steps:
         raise DataError(f"--rollout: {log.command.shape[0]} rows is more than the task's {task.n_steps + 1}")
-    return learner.update(log, profile, state)
+    if not isinstance(state.extra, dict):
+        raise DataError("--state: 'extra' must be an object (the learner's record); this state is damaged")
+    try:
+        new_profile, new_state, result = learner.update(log, profile, state)
+    except (TypeError, KeyError) as exc:
+        raise DataError(f"--state: the learner's record in it is damaged ({exc.__class__.__name__}); pass the "
+                        f"state saved beside the profile") from None
+    if not (np.all(np.isfinite(new_profile.commands)) and np.all(np.isfinite(new_state.theta))):
+        raise DataError("--rollout: the update from this log is not finite; no profile written "
+                        "(check the log for a faulty channel)")
+    return new_profile, new_state, result
 
 
 def load_state(path) -> LearnerState:
     """Read a learner state JSON (one-line DataError if it is not one)."""
     try:
-        return LearnerState.from_dict(json.loads(Path(path).read_text()))
+        data = json.loads(Path(path).read_text(encoding="utf-8"))
+        if not isinstance(data, dict):
+            raise TypeError("not an object")
+        return LearnerState.from_dict(data)
     except (OSError, ValueError, TypeError) as exc:
         raise DataError(f"--state: {str(path)!r} is not a learner state file ({exc.__class__.__name__})") from None

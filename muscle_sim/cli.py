@@ -337,8 +337,11 @@ def cmd_learn_step(args) -> int:
     m = strike_metrics(setup.task, log.measured[:, 0], log.measured[:, 1],
                        log.measured[:, 2:4][np.isfinite(log.measured[:, 2:4])])
     report["logged_trial"] = {k: m[k] for k in ("rms_error_deg", "strike_angle_error_deg", "strike_speed_error_pct")}
+    report["log_notes"] = log.metadata.get("read_notes", [])
     if args.json:
         return _print_json(report)
+    for note in report["log_notes"]:
+        print(f"note: {note}")
     lt = report["logged_trial"]
     print(f"logged trial: rms {lt['rms_error_deg']:.3f} deg, strike angle {lt['strike_angle_error_deg']:+.3f} deg, "
           f"strike speed {lt['strike_speed_error_pct']:+.2f} %")

@@ -173,15 +173,18 @@ class UnitTable:
                         f"allowed; {why}")
 
 
-def read_unit_table(path, allowed: dict, what: str = "table") -> UnitTable:
+def read_unit_table(path, allowed: dict, what: str = "table", ignore_unknown: bool = False) -> UnitTable:
     """Read a CSV with ``name [unit]`` headers; ``allowed`` maps each column name to its units
     (unit -> factor to SI). A first ``# {json}`` line is metadata; other '#' lines are comments.
     Unknown columns or units, short rows, non-numbers and non-finite values are one-line
-    DataErrors naming the row and column."""
+    DataErrors naming the row and column; with ``ignore_unknown`` columns of other names are
+    skipped (their headers listed in ``meta["ignored_columns"]``)."""
     try:
         lines = Path(path).read_text(encoding="utf-8").splitlines()
     except OSError as exc:
         raise DataError(f"{what}: cannot read {str(path)!r}: {exc.strerror or exc}") from None
+    except UnicodeDecodeError as exc:
+        raise DataError(f"{what}: {str(path)!r}: byte {exc.start} is not UTF-8 text") from None
     meta = {}
     if lines and lines[0].startswith("#"):
         try:
@@ -192,8 +195,11 @@ def read_unit_table(path, allowed: dict, what: str = "table") -> UnitTable:
     if not lines:
         raise DataError(f"{path}: empty {what}")
     headers = [h.strip() for h in lines[0].split(",")]
-    columns = {}
+    columns, ignored = {}, []
     for i, cell in enumerate(headers):
+        if ignore_unknown and (cell.split("[")[0].strip() not in allowed):
+            ignored.append(i)
+            continue
         if "[" not in cell or not cell.endswith("]"):
             raise DataError(f"{path}: column {i + 1} {cell!r} is not allowed; write 'name [unit]', e.g. 'angle [deg]'")
         name, unit = (x.strip() for x in cell[:-1].split("[", 1))
@@ -212,6 +218,9 @@ def read_unit_table(path, allowed: dict, what: str = "table") -> UnitTable:
             raise DataError(f"{path}: row {r} has {len(cells)} cells; must have {len(headers)}")
         row = []
         for c, cell in enumerate(cells):
+            if c in ignored:
+                row.append(0.0)
+                continue
             try:
                 v = float(cell)
             except ValueError:
@@ -221,6 +230,8 @@ def read_unit_table(path, allowed: dict, what: str = "table") -> UnitTable:
             row.append(v)
         rows.append(row)
     data = _np.array(rows, dtype=float).reshape(len(rows), len(headers))
+    if ignored:
+        meta = {**meta, "ignored_columns": [headers[i] for i in ignored]}
     return UnitTable(str(path), meta, headers, columns, data)
 
 
@@ -249,14 +260,21 @@ def read_log(path, task, resample: bool = False, allow_short: bool = False) -> "
     ``allow_short=True`` accepts a trial that was stopped early (a prefix of the grid).
     Errors are one line naming the row and column.
     """
-    table = read_unit_table(path, {n: units for n, (units, _) in LOG_COLUMNS.items()}, "log")
+    table = read_unit_table(path, {n: units for n, (units, _) in LOG_COLUMNS.items()}, "log", ignore_unknown=True)
+    notes = []
+    if table.meta.get("ignored_columns"):
+        notes.append(f"ignored column(s) {', '.join(table.meta['ignored_columns'])} (not used by the learner)")
     missing = [n for n, (_, req) in LOG_COLUMNS.items() if req and n not in table.columns]
     if missing:
         raise DataError(f"{path}: missing column(s) {', '.join(missing)}; required: time, angle, command_a, command_b")
     if table.data.shape[0] < 2:
         raise DataError(f"{path}: {table.data.shape[0]} data row(s); a trial needs {task.n_steps + 1}")
     cols, names, meta, col = table.columns, table.headers, table.meta, table.si
+    _check_log_magnitudes(path, table)
     t = col("time")
+    if abs(t[0]) > 1e-6 * task.dt + 1e-9:        # a logger clock that does not start at 0
+        notes.append(f"time shifted by {-t[0]:+.6g} s so the log starts at 0 (logger clock offset)")
+        t = t - t[0]
     dt = _np.diff(t)
     if _np.any(dt <= 0):
         r = int(_np.nonzero(dt <= 0)[0][0]) + 3
@@ -277,8 +295,10 @@ def read_log(path, task, resample: bool = False, allow_short: bool = False) -> "
         if name in cols and name != "time":
             values[name] = col(name)
     if not on_grid:
-        if t[0] > 1e-9 or t[-1] < grid[-1] - 1e-9:
-            raise DataError(f"{path}: time spans {t[0]:g} to {t[-1]:g} s; resampling needs 0 to {grid[-1]:g} s")
+        if t[-1] < grid[-1] - 0.5 * task.dt:
+            raise DataError(f"{path}: time spans {t[0]:g} to {t[-1]:g} s; resampling needs 0 to {grid[-1]:g} s "
+                            f"(to within half a control step)")
+        notes.append(f"resampled {t.size} rows onto the {task.dt * 1e3:g} ms control grid")
         for name, v in values.items():
             if name.startswith("command"):       # commands are held, not interpolated
                 idx = _np.searchsorted(t, grid, side="right") - 1
@@ -302,4 +322,23 @@ def read_log(path, task, resample: bool = False, allow_short: bool = False) -> "
     if _np.any(command < 0):
         r, c = _np.argwhere(command < 0)[0]
         raise DataError(f"{path}: row {r + 2}, column 'command_{'ab'[c]}': negative gauge command is not allowed")
+    if notes:
+        meta = {**meta, "read_notes": notes}
     return Rollout(t=t, measured=measured, command=command, reference=ref, metadata=meta)
+
+
+#: Largest magnitudes a trial log's values may have (SI): a joint between end stops never turns
+#: half a revolution; pressures and rates far beyond any McKibben rig (common practice: muscles
+#: are rated up to about 8 bar) are logger faults, not data.
+LOG_LIMITS = {"time": 3600.0, "angle": _math.pi, "rate": 1000.0, "pressure_a": 1e7, "pressure_b": 1e7,
+              "command_a": 1e7, "command_b": 1e7, "reference": _math.pi}
+
+
+def _check_log_magnitudes(path, table: UnitTable) -> None:
+    """A one-line DataError naming the first sample whose magnitude no rig produces."""
+    for name in table.columns:
+        bad = _np.nonzero(_np.abs(table.si(name)) > LOG_LIMITS[name])[0]
+        if bad.size:
+            i = table.columns[name][0]
+            table.fail(name, int(bad[0]), f"must be within +-{LOG_LIMITS[name] / table.columns[name][1]:g} "
+                                          f"{table.headers[i].split('[')[1][:-1]} (a logger fault, not data)")

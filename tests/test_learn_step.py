@@ -113,3 +113,54 @@ def test_profile_not_on_the_grid_or_not_matching_the_state(tune_dir, tmp_path):
             "--profile", str(tune_dir / "profiles" / "profile-0001.csv"),
             "--state", str(tune_dir / "profiles" / "state-0003.json"),
             "--config", str(DEMO), "--out", str(tmp_path / "n.csv")], "does not match --state")
+
+
+def test_realistic_rig_logs_are_accepted_with_notes(tune_dir, tmp_path, capsys):
+    # common practice of data loggers: a clock that does not start at 0, +-50 us jitter whose last
+    # stamp falls a few us short of the trial end, and channels the learner does not use. The
+    # learner gets the same profile as from the clean log (the resampled values agree closely)
+    rng = np.random.default_rng(3)
+
+    def realistic(header, rows):
+        rows = rows.copy()
+        rows[:, 0] += 12.345 + rng.uniform(-50e-6, 50e-6, rows.shape[0])
+        rows[0, 0], rows[-1, 0] = 12.345, 12.345 + 0.8 - 4e-6
+        rows = np.column_stack([rows, np.full(rows.shape[0], 6.0)])
+        return header + ["supply [bar]"], rows
+
+    profile = str(tune_dir / "profiles" / "profile-0000.csv")
+    clean = _rig_log(tune_dir, tmp_path, name="clean.csv")
+    messy = _rig_log(tune_dir, tmp_path, name="messy.csv", edit=realistic)
+    assert cli.main(["learn-step", "--rollout", str(clean), "--profile", profile, "--config", str(DEMO),
+                     "--out", str(tmp_path / "a.csv"), "--json"]) == 0
+    a = json.loads(capsys.readouterr().out)
+    assert cli.main(["learn-step", "--rollout", str(messy), "--profile", profile, "--config", str(DEMO),
+                     "--out", str(tmp_path / "b.csv"), "--resample"]) == 0
+    out = capsys.readouterr().out
+    assert "time shifted by -12.345 s" in out and "ignored column(s) supply [bar]" in out and "resampled" in out
+    assert cli.main(["learn-step", "--rollout", str(messy), "--profile", profile, "--config", str(DEMO),
+                     "--out", str(tmp_path / "c.csv"), "--resample", "--json"]) == 0
+    c = json.loads(capsys.readouterr().out)
+    assert abs(c["cost"] - a["cost"]) < 0.05 * a["cost"]
+
+
+@pytest.mark.parametrize("value, column", [(1e300, "angle [deg]"), (-5e8, "command_a [kPa]")])
+def test_an_outlier_sample_is_refused_naming_its_row(tune_dir, tmp_path, value, column):
+    # common practice: a joint between end stops never turns half a revolution and no McKibben
+    # rig sees 100 bar: such a sample is a logger fault; refusing it keeps the profile sound
+    col = 1 if column.startswith("angle") else 2
+    log = _rig_log(tune_dir, tmp_path, edit=_edit_row(30, col, value))
+    _fails(["learn-step", "--rollout", str(log), "--profile", str(tune_dir / "profiles" / "profile-0000.csv"),
+            "--config", str(DEMO), "--out", str(tmp_path / "n.csv")], f"row 32, column '{column}'")
+    assert not (tmp_path / "n.csv").exists()
+
+
+@pytest.mark.parametrize("text, expect", [("[1, 2]", "not a learner state"), ('{"theta": "abc"}', "--state"),
+                                          ('{"theta": [NaN, 1]}', "finite knot values")])
+def test_damaged_state_files_are_one_line_errors(tune_dir, tmp_path, text, expect):
+    state = tmp_path / "s.json"
+    state.write_text(text)
+    _fails(["learn-step", "--rollout", str(tune_dir / "rollouts" / "trial-0000.csv"),
+            "--profile", str(tune_dir / "profiles" / "profile-0000.csv"), "--state", str(state),
+            "--config", str(DEMO), "--out", str(tmp_path / "n.csv")], expect)
+    assert not (tmp_path / "n.csv").exists()
