@@ -114,7 +114,19 @@ def calibrate(base: McKibbenParams, data: BenchData) -> CalibrationResult:
         std = np.full(len(x0), np.nan)
     fitted = replace(base, end_correction=float(sol.x[0]), rest_braid_angle=float(sol.x[1]),
                      braid_friction=float(sol.x[2]) if fit_friction else base.braid_friction)
-    return CalibrationResult(bool(sol.success), int(sol.status), str(sol.message), fitted, names,
+    success, message = bool(sol.success), str(sol.message)
+    # a value pinned at a bound or without a finite uncertainty is no fit: the data (or its
+    # units, e.g. kN read as N) do not fit the model, whatever the optimiser reports
+    span = np.asarray(hi) - np.asarray(lo)
+    at_bound = [n for n, x, a, b, w in zip(names, sol.x, lo, hi, span) if min(x - a, b - x) <= 1e-6 * w]
+    undefined = [n for n, sd in zip(names, std) if not np.isfinite(sd)]
+    if at_bound or undefined:
+        success = False
+        message = "; ".join(part for part in (
+            f"{', '.join(at_bound)} at the bound of the allowed range" if at_bound else "",
+            f"{', '.join(undefined)} without a finite uncertainty" if undefined else "") if part) + \
+            " (check the data's units and the rest geometry assumed)"
+    return CalibrationResult(success, int(sol.status), message, fitted, names,
                              np.asarray(sol.x), std, float(np.sqrt(np.mean(res ** 2))), res)
 
 

@@ -379,9 +379,11 @@ def cmd_calibrate(args) -> int:
         if not (args.rest_length and args.rest_radius):
             raise BadInput("--config: missing; give a config, or --rest-length and --rest-radius (e.g. '250 mm')")
         try:
-            base = McKibbenParams(rest_length=to_si(args.rest_length, "length"),
-                                  rest_radius=to_si(args.rest_radius, "length"),
-                                  rest_braid_angle=to_si(args.braid_angle, "angle"))
+            geometry = dict(rest_length=to_si(args.rest_length, "length"), rest_radius=to_si(args.rest_radius, "length"),
+                            rest_braid_angle=to_si(args.braid_angle, "angle"))
+            if args.wall_thickness:
+                geometry["wall_thickness"] = to_si(args.wall_thickness, "length")
+            base = McKibbenParams(**geometry)
         except UnitError as exc:
             raise BadInput(str(exc)) from None
     data = read_bench_csv(args.data, base.rest_length)
@@ -391,6 +393,8 @@ def cmd_calibrate(args) -> int:
     shown = {"end_correction": (1.0, ""), "rest_braid_angle": (180 / math.pi, "deg"), "braid_friction": (1.0, "")}
     report = {"data": str(args.data), "points": int(data.force.size), "success": result.success,
               "message": result.message, "residual_rms_n": result.residual_rms,
+              "geometry_assumed": {"rest_length_m": base.rest_length, "rest_radius_m": base.rest_radius,
+                                   "wall_thickness_m": base.wall_thickness},
               "parameters": {n: {"value": float(v) * shown[n][0], "std": float(sd) * shown[n][0], "unit": shown[n][1]}
                              for n, v, sd in zip(result.names, result.values, result.std)},
               "snippet": snippet}
@@ -418,13 +422,18 @@ def cmd_calibrate(args) -> int:
     write_text_atomic(out / "fitted_muscle.yaml", snippet)
     write_json_atomic(out / "calibration.json", report)
     if args.json:
-        return _print_json(report)
+        return _print_json(report) or (0 if result.success else 1)
     print(f"fitted {data.force.size} bench points of {args.data}: {result.message}")
     for n, prm in report["parameters"].items():
         print(f"  {n:18s} {prm['value']:.5g} +- {prm['std']:.2g} {prm['unit']}")
     print(f"  residual rms {result.residual_rms:.3g} N")
     print(snippet, end="")
+    print(f"geometry assumed: rest length {base.rest_length * 1e3:g} mm, rest radius {base.rest_radius * 1e3:g} mm, "
+          f"wall {base.wall_thickness * 1e3:g} mm")
     print(f"wrote {out}/calibration.json, fitted_muscle.yaml, calibration_fit.png")
+    if not result.success:
+        print(f"pamjoint calibrate: error: the fit failed: {result.message}", file=sys.stderr)
+        return 1
     return 0
 
 
@@ -666,6 +675,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--rest-length", help="rest length, e.g. '250 mm' (without --config)")
     p.add_argument("--rest-radius", help="rest braid radius, e.g. '8 mm' (without --config)")
     p.add_argument("--braid-angle", default="20 deg", help="first guess of the rest braid angle (without --config)")
+    p.add_argument("--wall-thickness", help="bladder wall thickness, e.g. '1 mm' (without --config; default: "
+                                            "the muscle model's)")
     _add_out(p)
     p.add_argument("--json", action="store_true", help="print the report as JSON")
     p.set_defaults(func=cmd_calibrate)

@@ -1,4 +1,5 @@
 """Calibration of the muscle model from static bench data (scipy.optimize.least_squares)."""
+import json
 import math
 import subprocess
 import sys
@@ -75,3 +76,20 @@ def test_bad_bench_csvs_name_row_and_column(tmp_path, text, expect):
     run = subprocess.run([sys.executable, "-m", "muscle_sim.cli", "calibrate", str(bad), "--config", str(DEMO),
                           "--out", str(tmp_path / "o")], capture_output=True, text=True)
     assert run.returncode == 2 and run.stderr.count("\n") == 1 and expect in run.stderr, run.stderr
+
+
+def test_a_fit_at_a_bound_is_a_failure_and_the_geometry_is_recorded(tmp_path, capsys):
+    # derived: newtons read as kilonewtons make every force 1000x too large; no end correction or
+    # braid angle in the allowed range reaches them, so the fit ends at a bound and must fail
+    text = (ROOT / "examples" / "bench-muscle.csv").read_text().replace("force [N]", "force [kN]")
+    data = tmp_path / "kn.csv"
+    data.write_text(text)
+    code = cli.main(["calibrate", str(data), "--config", str(DEMO), "--out", str(tmp_path / "fit"), "--json"])
+    report = json.loads(capsys.readouterr().out)
+    assert code == 1 and report["success"] is False and "at the bound" in report["message"]
+    assert report["geometry_assumed"]["rest_length_m"] == pytest.approx(0.25)
+    # without a config the wall thickness can be given; it is recorded as assumed
+    assert cli.main(["calibrate", str(ROOT / "examples" / "bench-muscle.csv"), "--rest-length", "250 mm",
+                     "--rest-radius", "8 mm", "--wall-thickness", "1 mm", "--out", str(tmp_path / "w"),
+                     "--json"]) in (0, 1)
+    assert json.loads(capsys.readouterr().out)["geometry_assumed"]["wall_thickness_m"] == pytest.approx(1e-3)
