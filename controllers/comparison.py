@@ -9,6 +9,7 @@ from muscle_sim import safety
 from muscle_sim.errors import DataError, SimulationDiverged
 from muscle_sim.records import read_log, save_figure_atomic, write_json_atomic, write_text_atomic
 from muscle_sim.runs import run_trial
+from muscle_sim.tables import CONTROLLER, METRIC_COLUMNS, markdown_table
 from muscle_sim.threads import single_blas_thread
 
 from .base import PressureProfile
@@ -107,13 +108,9 @@ def compare(setup, trials: int, seed: int, out, method: str = "norm-optimal", pr
 def comparison_table(data: dict) -> str:
     """Markdown table of the comparison (one row per controller)."""
     lines = [f"Comparison on `{data['config']}` (seed {data['seed']}, {data['learning_trials']} learning trials, "
-             f"method {data['method']}); evaluated on trial {data['evaluated_trial']}.", "",
-             "| controller | swing RMS [deg] | strike angle error [deg] | strike speed error [%] | peak pressure [kPa] |",
-             "|---|---:|---:|---:|---:|"]
-    for name, m in data["controllers"].items():
-        cells = [m[k] for k in METRIC_KEYS]
-        text = [f"{v:.3f}" if isinstance(v, float) and np.isfinite(v) else "n/a" for v in cells]
-        lines.append(f"| {name} | " + " | ".join(text) + " |" + (f" fault: {m['fault']}" if m.get("fault") else ""))
+             f"method {data['method']}); evaluated on trial {data['evaluated_trial']}.", ""]
+    rows = [{"controller": name, **m} for name, m in data["controllers"].items()]
+    lines += markdown_table(rows, METRIC_COLUMNS, CONTROLLER)
     if "feedback" in data:
         lines += ["", feedback_line(data["feedback"])]
     return "\n".join(lines) + "\n"

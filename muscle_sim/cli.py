@@ -9,7 +9,7 @@ import numpy as np
 import sys
 from pathlib import Path
 
-from . import safety
+from . import safety, tables
 from .errors import ConfigError, DataError, ParameterError
 from .threads import single_blas_thread
 from .units import UnitError, to_si
@@ -175,11 +175,11 @@ def cmd_check(args) -> int:
             if isinstance(value, dict):
                 show(value, f"{prefix}{key}.")
             else:
-                print(f"  {prefix}{key} = {value!r}")
+                print(f"  {prefix}{key} = {tables.value_text(value)}")
 
     show(cfg.values)
     for key, value in resolved["derived"].items():
-        print(f"  derived {key} = {value:.6g}")
+        print(f"  derived {key} = {tables.number(value)}")
     _print_cautions(setup)
     return 0
 
@@ -200,27 +200,12 @@ def cmd_run(args) -> int:
     if args.json:
         return _print_json(summary)
     print(f"{args.episodes} episode(s) of {setup.config.source} with controller '{controller.name}', seed {args.seed}")
-    print(f"{'episode':>7} {'rms [deg]':>10} {'strike angle err [deg]':>23} {'speed err [%]':>14} {'peak [kPa]':>11}")
-    for row in summary["episodes"]:
-        print(f"{row['episode']:>7} {row['rms_error_deg']:>10.3f} {row['strike_angle_error_deg']:>23.3f} "
-              f"{row['strike_speed_error_pct']:>14.2f} {row['peak_pressure_kpa']:>11.1f}"
-              + (f"  FAULT: {row['fault']}" if row["fault"] else ""))
+    for line in tables.text_table(summary["episodes"], tables.METRIC_COLUMNS, tables.EPISODE):
+        print(line)
     _print_cautions(setup)
     print(f"wrote {out}/summary.json, rollouts/ and plots")
     print(safety.GENERAL)
     return 0
-
-
-def _metric_line(label, m) -> str:
-    def f(v, spec):
-        return format(v, spec) if isinstance(v, (int, float)) and v == v else "n/a"
-
-    return (f"{label:>20} {f(m['rms_error_deg'], '10.3f')} {f(m['strike_angle_error_deg'], '+12.3f')} "
-            f"{f(m['strike_speed_error_pct'], '+12.2f')} {f(m['peak_pressure_kpa'], '10.1f')}"
-            + (f"  FAULT: {m['fault']}" if m.get("fault") else ""))
-
-
-_METRIC_HEAD = (f"{'':>20} {'rms [deg]':>10} {'strike [deg]':>12} {'speed [%]':>12} {'peak [kPa]':>10}")
 
 
 def cmd_tune(args) -> int:
@@ -242,11 +227,11 @@ def cmd_tune(args) -> int:
     _print_cautions(setup)
     if not args.json:
         print(f"tuning {setup.config.source} with {method} for {trials} trials (seed {args.seed}) into {out}")
-        print(_METRIC_HEAD.replace(" " * 20, f"{'trial':>20}", 1))
+        print(tables.header_line(tables.METRIC_COLUMNS, tables.TRIAL))
 
     def progress(row):
         if not args.json:
-            print(_metric_line(str(row["trial"]), row), flush=True)
+            print(tables.row_line(row, tables.METRIC_COLUMNS, tables.TRIAL), flush=True)
         return False
 
     try:
@@ -257,8 +242,7 @@ def cmd_tune(args) -> int:
     if args.json:
         return _print_json(summary)
     best = summary["trials"][summary["best_trial"]]
-    print(f"{summary['message']}; best trial {summary['best_trial']}: rms {best['rms_error_deg']:.3f} deg, "
-          f"strike {best['strike_angle_error_deg']:+.3f} deg, speed {best['strike_speed_error_pct']:+.2f} %")
+    print(f"{summary['message']}; best trial {summary['best_trial']}: {tables.metric_words(best)}")
     verdict = summary.get("verdict") or {}
     if verdict:
         print(f"verdict: {verdict['message']}; next: {verdict['next_action']}")
@@ -281,9 +265,9 @@ def cmd_compare(args) -> int:
     if args.json:
         return _print_json(data)
     print(f"comparison on {setup.config.source}, seed {args.seed}, after {trials} learning trials:")
-    print(_METRIC_HEAD.replace(" " * 20, f"{'controller':>20}", 1))
-    for name, m in data["controllers"].items():
-        print(_metric_line(name, m))
+    rows = [{"controller": name, **m} for name, m in data["controllers"].items()]
+    for line in tables.text_table(rows, tables.METRIC_COLUMNS, tables.CONTROLLER):
+        print(line)
     print(feedback_line(data["feedback"]))
     print(f"wrote {out}/comparison.json, comparison.md, overlay_angle.png, overlay_error.png")
     print(safety.GENERAL)
@@ -324,8 +308,7 @@ def cmd_learn_step(args) -> int:
     if args.json:
         return _print_json(report)
     lt = report["logged_trial"]
-    print(f"logged trial: rms {lt['rms_error_deg']:.3f} deg, strike angle {lt['strike_angle_error_deg']:+.3f} deg, "
-          f"strike speed {lt['strike_speed_error_pct']:+.2f} %")
+    print(f"logged trial: {tables.metric_words(lt)}")
     print(f"update: {result.message}; cost {result.cost:.4g} -> predicted {result.predicted_cost:.4g}; "
           f"active limits {result.active_constraints}; largest change {result.step_norm_kpa:.1f} kPa; "
           f"peak command {report['peak_command_kpa']:.0f} kPa")

@@ -10,6 +10,7 @@ from . import safety
 from .errors import SimulationDiverged
 from .records import save_figure_atomic, write_json_atomic
 from .simulation import Setup, StrikeTrial
+from .tables import cell, metric_words
 from .tasks import strike_metrics
 
 
@@ -45,9 +46,7 @@ def run_trial(setup: Setup, controller, trial: int, rng: np.random.Generator, se
 
 
 def _progress(i: int, n: int, m: dict, stream) -> None:
-    stream.write(f"episode {i + 1}/{n}: rms {m['rms_error_deg']:.3f} deg, strike angle "
-                 f"{m['strike_angle_error_deg']:+.3f} deg, strike speed {m['strike_speed_error_pct']:+.2f} %, "
-                 f"peak {m['peak_pressure_kpa']:.0f} kPa\n")
+    stream.write(f"episode {i + 1}/{n}: {metric_words(m)}, peak {cell(m['peak_pressure_kpa'], '.1f')} kPa\n")
     stream.flush()
 
 
