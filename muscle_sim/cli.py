@@ -76,47 +76,64 @@ def _out_dir(args, kind: str) -> Path:
     return new_run_dir(kind)
 
 
-def cmd_muscle(args) -> int:
-    """Force table and force–contraction–pressure map of the configured muscle."""
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-
-    from . import config as cfgmod
-    from .muscle_map import build_map, format_table, map_to_dict
-    from .plotting import plot_force_curves, plot_force_map
+def cmd_joint(args) -> int:
+    """Available torque and stiffness of the antagonistic joint over its angle range."""
+    from .joint_view import ANGLE, build_view, format_table, swing_extremes, table_columns, table_rows, view_to_dict
+    from .muscle_map import format_table as muscle_table
+    from .plotting import new_figure, plot_joint_stiffness, plot_joint_torque
     from .records import save_figure_atomic, write_json_atomic
+    from .report import config_text, write_report
+    from .simulation import Setup
 
-    cfg = cfgmod.load(args.config)
-    params = cfgmod.muscle_params(cfg)
-    settings = cfg.get("muscle_map")
-    pressures = _pressure_list(args.pressures) if args.pressures else settings["pressures"]
-    mmap = build_map(params, pressures, settings["contraction_step"], settings["usable_fraction"])
-    out = _out_dir(args, "muscle")
-
-    fig, (ax1, ax2) = plt.subplots(1, 2, figsize=(11, 4.5), layout="constrained")
-    plot_force_curves(mmap, ax=ax1)
-    plot_force_map(mmap, ax=ax2)
-    fig.suptitle(f"{cfg.get('name') or 'muscle'}: static force of one muscle")
-    png = save_figure_atomic(fig, out / "muscle_map.png")
-    plt.close(fig)
-    data = {"config": cfg.source, "config_hash": cfg.digest, **map_to_dict(mmap),
-            "cautions": [safety.over_rated(p / 1e5, params.rated_pressure / 1e5)
-                         for p in mmap.pressures[mmap.over_rated]],
+    setup = Setup.from_config(args.config)
+    cfg = setup.config
+    levels = _pressure_list(args.pressures) if args.pressures else None
+    view = build_view(setup, levels)
+    out = _out_dir(args, "joint")
+    fig, axes = new_figure(2, 1, figsize=(10.5, 7.5), sharex=True)
+    plot_joint_torque(view, ax=axes[0, 0])
+    plot_joint_stiffness(view, ax=axes[1, 0])
+    fig.suptitle(f"{cfg.get('name') or 'joint'}: what the muscle pair can do between the end stops")
+    png = save_figure_atomic(fig, out / "joint_view.png")
+    rated_bar = setup.rated_pressure / 1e5
+    cautions = [safety.over_rated(p / 1e5, rated_bar) for p in view.levels[view.over_rated]]
+    data = {"config": cfg.source, "config_hash": cfg.digest, **view_to_dict(view), "cautions": cautions,
             "safety": safety.GENERAL, "plot": str(png)}
-    write_json_atomic(out / "muscle_map.json", data)
+    m = setup.plant.muscle
+    weak = swing_extremes(view)
+    pa, pb = view.hold_pressures
+    summary = [
+        f"joint of {cfg.source}: pulley radius {setup.plant.joint.pulley_radius * 1e3:g} mm, end stops "
+        f"{math.degrees(view.lower_stop):+.0f} .. {math.degrees(view.upper_stop):+.0f} deg, task swing "
+        f"{math.degrees(view.swing[0]):+.1f} .. {math.degrees(view.swing[1]):+.1f} deg, rated pressure {rated_bar:g} bar",
+        f"over the swing with one muscle at {view.levels[-1] / 1e5:g} bar: at least {weak['toward_plus_nm']:+.2f} N m "
+        f"toward +angle (A) and {weak['toward_minus_nm']:+.2f} N m toward -angle (B)",
+        f"holding {math.degrees(view.hold_angle):+g} deg: A {pa / 1e5:.2f} bar, B {pb / 1e5:.2f} bar, stiffness "
+        f"{view.hold_stiffness:.1f} N m/rad",
+        f"one muscle (rest length {m.rest_length * 1e3:g} mm, rest radius {m.rest_radius * 1e3:g} mm, braid "
+        f"{math.degrees(m.rest_braid_angle):.1f} deg): force vanishes at {data['muscle']['max_contraction_pct']:.1f} % "
+        f"contraction; between the stops A works at {100 * view.contraction_a.min():.1f} .. "
+        f"{100 * view.contraction_a.max():.1f} %, B at {100 * view.contraction_b.min():.1f} .. "
+        f"{100 * view.contraction_b.max():.1f} %" + (" (below 0: slack)" if min(view.contraction_a.min(),
+                                                   view.contraction_b.min()) < 0 else "")]
+    joint_table = format_table(view)
+    used = np.concatenate([view.contraction_a, view.contraction_b])
+    single = muscle_table(view.muscle_map, (max(float(used.min()), 0.0), float(used.max())))
+    write_json_atomic(out / "joint_view.json", data)
+    write_report(out, f"joint view of {cfg.source}", tables.cells(table_rows(view), table_columns(view), ANGLE),
+                 config_text(cfg),
+cautions, "size the strike with `pamjoint plan` on this config; the swing band must sit where "
+                 "the torque toward each side covers the strike and the return", [png],
+                 notes=summary + ["", single])
     if args.json:
         return _print_json(data)
-    print(f"muscle of {cfg.source}: rest length {params.rest_length * 1e3:g} mm, rest radius "
-          f"{params.rest_radius * 1e3:g} mm, rest braid angle {math.degrees(params.rest_braid_angle):.2f} deg")
-    print(f"maximum contraction {data['max_contraction_pct']:.1f} %, usable up to "
-          f"{data['usable_contraction_pct']:.1f} %; volume {data['rest_volume_cm3']:.1f} cm^3 at rest, "
-          f"{data['max_volume_cm3']:.1f} cm^3 fully contracted")
-    print(format_table(mmap))
-    for line in data["cautions"]:
+    for line in summary:
         print(line)
-    print(f"wrote {png} and {out / 'muscle_map.json'}")
+    print(joint_table)
+    print(single)
+    for line in cautions:
+        print(line)
+    print(f"wrote {png}, {out / 'joint_view.json'} and {out / 'report.html'}")
     print(safety.GENERAL)
     return 0
 
@@ -547,13 +564,13 @@ def build_parser() -> argparse.ArgumentParser:
                      "simulation and learned feedforward control.")
     sub = parser.add_subparsers(dest="command", required=True, parser_class=_Parser)
 
-    p = sub.add_parser("muscle", help="force table and force map of the configured muscle")
-    p.add_argument("config", help="YAML config (the plant.muscle section is used)")
-    p.add_argument("--pressures", help="gauge pressures to tabulate, e.g. '1,2,3,4,5,6 bar' "
-                   "(default: muscle_map.pressures, else 1 bar steps up to the rated pressure)")
+    p = sub.add_parser("joint", help="available torque and stiffness of the muscle pair over the joint angle")
+    p.add_argument("config", help="YAML config (the plant's muscles and joint, and the task)")
+    p.add_argument("--pressures", help="pressure levels, e.g. '2,4,6 bar': one muscle at the level for torque, "
+                   "both for stiffness (default: a third, two thirds and all of the rated pressure)")
     p.add_argument("--out", help="output folder (default: a new folder under runs/)")
     p.add_argument("--json", action="store_true", help="print the numbers as JSON")
-    p.set_defaults(func=cmd_muscle)
+    p.set_defaults(func=cmd_joint)
 
     p = sub.add_parser("check", help="validate a config and print the resolved SI values")
     p.add_argument("config", help="YAML config")
