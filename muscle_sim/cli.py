@@ -220,7 +220,7 @@ def cmd_run(args) -> int:
     for line in tables.text_table(summary["episodes"], tables.METRIC_COLUMNS, tables.EPISODE):
         print(line)
     _print_cautions(setup)
-    print(f"wrote {out}/summary.json, rollouts/ and plots")
+    print(f"wrote {out}/summary.json, rollouts/, episodes.png and report.html")
     print(safety.GENERAL)
     return 0
 
@@ -493,13 +493,63 @@ def cmd_identify(args) -> int:
     return 0
 
 
+def _plan_figure(setup, result, t):
+    """plan.png: the planned swing against the task reference with stops, angle limits and the
+    strike; the planned commands of both muscles below, on the same time axis."""
+    from .plotting import (COLOR_A, COLOR_B, mark_stops, mark_strike, new_figure, REFERENCE_STYLE)
+    from .tasks import reference
+
+    task, j = setup.task, setup.plant.joint
+    fig, axes = new_figure(2, 1, figsize=(8, 6.5), sharex=True)
+    ax1, ax2 = axes[:, 0]
+    ax1.plot(t, np.degrees(reference(task, t)[0]), label="task reference", **REFERENCE_STYLE)
+    ax1.plot(t, np.degrees(result.swing), color="#4c5bd4", lw=1.6, label="planned swing (prior model)")
+    ax1.plot([task.strike_time], [math.degrees(task.strike_angle)], marker="o", mfc="none", mec="k", ms=8, ls="none",
+             zorder=11, label="strike target")
+    margin = setup.config.get("learning.angle_margin")
+    for q in (j.lower_stop + margin, j.upper_stop - margin):
+        ax1.axhline(math.degrees(q), color="0.45", lw=0.8, ls="--",
+                    label="angle limit (stop less margin)" if q < 0 else None)
+    mark_stops(ax1, j.lower_stop, j.upper_stop)
+    mark_strike(ax1, task.strike_time)
+    ax1.set_ylabel("joint angle [deg]")
+    ax1.set_title("planned swing", fontsize="small", loc="left")
+    ax1.legend(fontsize="x-small", loc="upper left", bbox_to_anchor=(1.01, 1.0), borderaxespad=0.0)
+    p = result.profile
+    ax2.step(p.t, p.commands[:, 0] / 1e5, where="post", color=COLOR_A, label="command A (pulls toward +angle)")
+    ax2.step(p.t, p.commands[:, 1] / 1e5, where="post", color=COLOR_B, label="command B (pulls toward −angle)")
+    ax2.axhline(setup.rated_pressure / 1e5, color="0.2", lw=1, ls="-.", label=f"rated {setup.rated_pressure / 1e5:g} bar")
+    mark_strike(ax2, task.strike_time, label=False)
+    ax2.set_ylabel("command [bar gauge]")
+    ax2.set_xlabel("time [s]")
+    ax2.set_title("planned pressure commands", fontsize="small", loc="left")
+    ax2.legend(fontsize="x-small", loc="upper left", bbox_to_anchor=(1.01, 1.0), borderaxespad=0.0)
+    fig.suptitle(f"{setup.config.get('name') or 'plan'}: strike planned on the prior model ({result.objective})",
+                 fontsize="medium")
+    return fig
+
+
+def _plan_report(setup, result, out: Path, png) -> None:
+    from .report import config_text, write_report
+
+    task = setup.task
+    rows = [["quantity", "planned", "wanted"],
+            ["strike angle [deg]", f"{math.degrees(result.strike_angle):+.3f}", f"{math.degrees(task.strike_angle):+.3f}"],
+            ["strike speed [rad/s]", f"{result.strike_speed:.3f}", f"{task.strike_speed:.3f}"],
+            [f"{result.objective} [bar]", f"{result.objective_value:.3f}", tables.MISSING]]
+    rows += [["active limit", line, tables.MISSING] for line in result.active_limits]
+    next_step = (f"tune from this profile: `pamjoint tune {setup.config.source} --start {out / 'profile.csv'}`"
+                 if result.success else "the strike is out of reach: " + "; ".join(result.suggestions or ["relax the task"]))
+    cautions = [safety.HARDWARE]
+    if setup.over_rated:
+        cautions.insert(0, safety.over_rated(setup.plant.pneumatics.supply_pressure / 1e5, setup.rated_pressure / 1e5))
+    write_report(out, f"plan of {setup.config.source} on the prior model", rows, config_text(setup.config), cautions,
+                 next_step, [(png, "plan.png: planned swing against the task reference with stops, angle limits and "
+                                   "strike; the planned commands of both muscles below")], notes=[result.message])
+
+
 def cmd_plan(args) -> int:
     """Plan the strike offline on the prior model."""
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-
     from controllers.planning import plan
     from .records import save_figure_atomic, write_json_atomic, write_text_atomic
     from .simulation import Setup
@@ -523,19 +573,7 @@ def cmd_plan(args) -> int:
     lines = ["# planned swing of the prior model", "time [s],reference [deg]"]
     lines += [f"{a:.9g},{math.degrees(q):.9g}" for a, q in zip(t, result.swing)]
     write_text_atomic(out / "reference.csv", "\n".join(lines) + "\n")
-    fig, (ax1, ax2) = plt.subplots(2, 1, figsize=(7, 6), sharex=True, layout="constrained")
-    from .tasks import reference
-
-    ax1.plot(t, np.degrees(reference(task, t)[0]), color="0.6", lw=2, label="task reference")
-    ax1.plot(t, np.degrees(result.swing), label="planned swing (prior)")
-    ax1.plot([task.strike_time], [math.degrees(task.strike_angle)], "kx", label="strike")
-    ax1.set_ylabel("angle [deg]")
-    ax1.legend(fontsize="small")
-    ax2.step(result.profile.t, result.profile.commands / 1e5, where="post")
-    ax2.set_ylabel("command [bar]")
-    ax2.set_xlabel("time [s]")
-    save_figure_atomic(fig, out / "plan.png")
-    plt.close(fig)
+    png = save_figure_atomic(_plan_figure(setup, result, t), out / "plan.png")
     report = {"success": result.success, "status": result.status, "message": result.message,
               "misses": result.misses, "objective": result.objective, "objective_value": result.objective_value,
               "strike_angle_deg": math.degrees(result.strike_angle), "strike_speed_rad_s": result.strike_speed,
@@ -543,6 +581,7 @@ def cmd_plan(args) -> int:
               "suggestions": result.suggestions, "profile": str(out / "profile.csv"),
               "safety": safety.GENERAL + " " + safety.HARDWARE}
     write_json_atomic(out / "plan.json", report)
+    _plan_report(setup, result, out, png)
     if args.json:
         return _print_json(report)
     print(f"plan of {setup.config.source} on the prior model, minimising {result.objective}: {result.message}")
@@ -553,7 +592,8 @@ def cmd_plan(args) -> int:
         print(f"  active limit: {line}")
     for line in result.suggestions:
         print(f"  would help: {line}")
-    print(f"wrote {out}/profile.csv, reference.csv, plan.json, plan.png (start tuning with --start {out}/profile.csv)")
+    print(f"wrote {out}/profile.csv, reference.csv, plan.json, plan.png, report.html (start tuning with --start "
+          f"{out}/profile.csv)")
     print(safety.HARDWARE)
     return 0
 

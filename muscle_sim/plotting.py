@@ -22,11 +22,12 @@ STRIKE_ZOOM = 0.03
 
 
 def new_figure(rows: int = 1, cols: int = 1, figsize=(7, 4), **kwargs):
-    """A figure and its axes through the object API (constrained layout); ``(fig, axes)``."""
+    """A figure and its axes through the object API (constrained layout); ``(fig, axes)``, a 2-D
+    array of axes (none with ``rows=0``, for figures that lay out their own grid)."""
     from matplotlib.figure import Figure
 
     fig = Figure(figsize=figsize, layout="constrained")
-    return fig, fig.subplots(rows, cols, squeeze=False, **kwargs)
+    return fig, (fig.subplots(rows, cols, squeeze=False, **kwargs) if rows else None)
 
 
 def _axes(ax):
@@ -35,7 +36,16 @@ def _axes(ax):
     return ax
 
 
-def _trial_colors(n: int):
+#: Colours of named alternatives (controllers), in order; trials in a sequence use :func:`trial_colors`.
+CATEGORY_COLORS = ("#4c5bd4", "#e08a00", "#8c4fa3", "#1f9e89", "#d1495b", "#6b6b6b", "#8a6d1d", "#2b8cbe")
+
+
+def category_colors(n: int):
+    """``n`` distinct colours for named alternatives (they repeat after eight)."""
+    return [CATEGORY_COLORS[i % len(CATEGORY_COLORS)] for i in range(n)]
+
+
+def trial_colors(n: int):
     from matplotlib import colormaps
 
     cmap = colormaps["plasma"]
@@ -62,13 +72,14 @@ def mark_strike(ax, strike_time: float, label: bool = True):
     return ax.axvline(strike_time, label="strike" if label else None, **STRIKE_STYLE)
 
 
-def plot_angle(rollouts, ax=None, labels=None, stops=None, strike=None):
+def plot_angle(rollouts, ax=None, labels=None, stops=None, strike=None, colors=None):
     """Measured joint angle of one or more rollouts [deg], the reference dashed on top of them;
-    ``stops`` (lower, upper) [rad] and ``strike`` (time [s], angle [rad]) are marked when given."""
+    ``stops`` (lower, upper) [rad] and ``strike`` (time [s], angle [rad]) are marked when given;
+    ``colors`` default to a sequence of trial colours."""
     ax = _axes(ax)
     rollouts = rollouts if isinstance(rollouts, (list, tuple)) else [rollouts]
     artists = []
-    for i, (r, color) in enumerate(zip(rollouts, _trial_colors(len(rollouts)))):
+    for i, (r, color) in enumerate(zip(rollouts, colors or trial_colors(len(rollouts)))):
         label = labels[i] if labels else f"trial {r.metadata.get('trial', i)}"
         artists.append(ax.plot(r.t, np.degrees(r.measured[:, 0]), lw=1.2, color=color, label=label)[0])
     artists.insert(0, ax.plot(rollouts[0].t, np.degrees(rollouts[0].reference), label="reference",
@@ -193,7 +204,7 @@ def plot_learning_curve(rows, axes, goals=None):
                                    marker="v", ms=9, color="k", label="fault")[0])
         ax.set_ylabel(label)
         ax.grid(True, which="both", alpha=0.3)
-        ax.legend(fontsize="x-small", loc="upper right")
+        ax.legend(fontsize="x-small", loc="best")
     axes[-1].set_xlabel("trial")
     return artists
 

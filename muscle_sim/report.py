@@ -8,7 +8,6 @@ joint, and sweeps) write theirs through :func:`write_report`.
 from __future__ import annotations
 
 import base64
-import datetime as _dt
 import html
 from pathlib import Path
 
@@ -80,10 +79,9 @@ def render_report(title, table_rows, config_text, cautions, next_step, figures, 
     cautions = [c for c in (cautions or []) if c]
     if safety.GENERAL not in cautions:
         cautions.append(safety.GENERAL)
-    stamp = _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
     parts = ["<!DOCTYPE html>", '<html lang="en"><head><meta charset="utf-8">',
              f"<title>{html.escape(title)}</title><style>{_STYLE}</style></head><body>",
-             f"<h1>{html.escape(title)}</h1>", f'<p class="meta">pamjoint report, written {stamp}</p>',
+             f"<h1>{html.escape(title)}</h1>", '<p class="meta">pamjoint report (the same inputs give the same page, byte for byte)</p>',
              "<h2>Cautions</h2>", *(f'<p class="caution">{html.escape(c)}</p>' for c in cautions),
              "<h2>Suggested next step</h2>", f'<p class="next">{html.escape(next_step or "–")}</p>',
              "<h2>Results</h2>", _table_html(table_rows)]
