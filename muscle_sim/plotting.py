@@ -37,7 +37,7 @@ def _axes(ax):
 
 
 #: Colours of named alternatives (controllers), in order; trials in a sequence use :func:`trial_colors`.
-CATEGORY_COLORS = ("#4c5bd4", "#e08a00", "#8c4fa3", "#1f9e89", "#d1495b", "#6b6b6b", "#8a6d1d", "#2b8cbe")
+CATEGORY_COLORS = ("#4c5bd4", "#e08a00", "#8c4fa3", "#1f9e89", "#d1495b", "#7f8f00", "#8a6d1d", "#2b8cbe")
 
 
 def category_colors(n: int):
