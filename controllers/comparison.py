@@ -9,6 +9,8 @@ from muscle_sim import safety
 from muscle_sim.errors import DataError, SimulationDiverged
 from muscle_sim.records import read_log, save_figure_atomic, write_json_atomic, write_text_atomic
 from muscle_sim.runs import run_trial
+from muscle_sim.report import config_text, write_report
+from muscle_sim.tables import CONTROLLER, METRIC_COLUMNS, cells, markdown_table
 from muscle_sim.threads import single_blas_thread
 
 from .base import PressureProfile
@@ -99,21 +101,33 @@ def compare(setup, trials: int, seed: int, out, method: str = "norm-optimal", pr
             "learned_best_trial": learned_summary["best_trial"], "spsa_best_trial": spsa_summary["best_trial"],
             "controllers": results, "feedback": feedback, "safety": safety.GENERAL + " " + safety.HARDWARE}
     write_text_atomic(out / "comparison.md", comparison_table(data))
-    _plots(setup, rollouts, out)
+    figures = _plots(setup, rollouts, out, trials)
     write_json_atomic(out / "comparison.json", data)
+    _report(setup, data, out, figures)
     return data
+
+
+def _report(setup, data: dict, out: Path, figures) -> None:
+    """report.html of a compare folder."""
+    rows = [{"controller": name, **m} for name, m in data["controllers"].items()]
+    finite = [r for r in rows if not r.get("fault") and r["rms_error_deg"] is not None
+              and np.isfinite(r["rms_error_deg"])]
+    best = min(finite, key=lambda r: r["rms_error_deg"])["controller"] if finite else None
+    next_step = (f"{best} tracks best here: check its profile on the rig at reduced pressure (the learned profile "
+                 f"is learned/final_profile.csv)" if best else "every controller faulted: check the config first")
+    cautions = [safety.over_rated(setup.plant.pneumatics.supply_pressure / 1e5, setup.rated_pressure / 1e5)] \
+        if setup.over_rated else []
+    write_report(out, f"comparison on {data['config']}: seed {data['seed']}, {data['learning_trials']} learning "
+                 f"trials", cells(rows, METRIC_COLUMNS, CONTROLLER), config_text(setup.config),
+                 cautions + [safety.HARDWARE], next_step, figures, notes=[feedback_line(data["feedback"])])
 
 
 def comparison_table(data: dict) -> str:
     """Markdown table of the comparison (one row per controller)."""
     lines = [f"Comparison on `{data['config']}` (seed {data['seed']}, {data['learning_trials']} learning trials, "
-             f"method {data['method']}); evaluated on trial {data['evaluated_trial']}.", "",
-             "| controller | swing RMS [deg] | strike angle error [deg] | strike speed error [%] | peak pressure [kPa] |",
-             "|---|---:|---:|---:|---:|"]
-    for name, m in data["controllers"].items():
-        cells = [m[k] for k in METRIC_KEYS]
-        text = [f"{v:.3f}" if isinstance(v, float) and np.isfinite(v) else "n/a" for v in cells]
-        lines.append(f"| {name} | " + " | ".join(text) + " |" + (f" fault: {m['fault']}" if m.get("fault") else ""))
+             f"method {data['method']}); evaluated on trial {data['evaluated_trial']}.", ""]
+    rows = [{"controller": name, **m} for name, m in data["controllers"].items()]
+    lines += markdown_table(rows, METRIC_COLUMNS, CONTROLLER)
     if "feedback" in data:
         lines += ["", feedback_line(data["feedback"])]
     return "\n".join(lines) + "\n"
@@ -138,27 +152,31 @@ def feedback_line(feedback: dict) -> str:
             + ("" if g["success"] else f"; {g['message']}") + ".")
 
 
-def _plots(setup, rollouts: dict, out: Path) -> None:
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-
-    from muscle_sim.plotting import plot_angle
+def _plots(setup, rollouts: dict, out: Path, trial: int) -> list:
+    """overlay_angle.png and overlay_error.png; returns ``(path, caption)`` pairs for the report."""
+    from muscle_sim.plotting import REFERENCE_STYLE, mark_strike, category_colors, new_figure, plot_angle
 
     names = list(rollouts)
-    fig, ax = plt.subplots(figsize=(8, 4.5), layout="constrained")
-    plot_angle([rollouts[n] for n in names], ax=ax, labels=names)
-    ax.axvline(setup.task.strike_time, color="0.5", lw=0.8, ls=":")
-    ax.set_title("joint angle: learned against model-only control")
-    save_figure_atomic(fig, out / "overlay_angle.png")
-    plt.close(fig)
-    fig, ax = plt.subplots(figsize=(8, 4.5), layout="constrained")
-    for n in names:
+    task, j = setup.task, setup.plant.joint
+    what = f"{len(names)} controllers on evaluation trial {trial} (same plant, same noise)"
+    fig, axes = new_figure(figsize=(9, 5))
+    ax = axes[0, 0]
+    plot_angle([rollouts[n] for n in names], ax=ax, labels=names, stops=(j.lower_stop, j.upper_stop),
+               strike=(task.strike_time, task.strike_angle), colors=category_colors(len(names)))
+    ax.set_title(f"joint angle of {what}", fontsize="medium")
+    ax.legend(fontsize="x-small", loc="upper left", bbox_to_anchor=(1.01, 1.0), borderaxespad=0.0)
+    angle = save_figure_atomic(fig, out / "overlay_angle.png")
+    fig, axes = new_figure(figsize=(9, 5))
+    ax = axes[0, 0]
+    ax.axhline(0.0, label="reference (zero error)", **REFERENCE_STYLE)
+    for n, color in zip(names, category_colors(len(names))):
         r = rollouts[n]
-        ax.plot(r.t, np.degrees(r.measured[:, 0] - r.reference), label=n, lw=1)
+        ax.plot(r.t, np.degrees(r.measured[:, 0] - r.reference), label=n, lw=1, color=color)
+    mark_strike(ax, task.strike_time)
     ax.set_xlabel("time [s]")
-    ax.set_ylabel("tracking error [deg]")
-    ax.legend(fontsize="small")
-    save_figure_atomic(fig, out / "overlay_error.png")
-    plt.close(fig)
+    ax.set_ylabel("measured − reference angle [deg]")
+    ax.set_title(f"tracking error of {what}", fontsize="medium")
+    ax.legend(fontsize="x-small", loc="upper left", bbox_to_anchor=(1.01, 1.0), borderaxespad=0.0)
+    error = save_figure_atomic(fig, out / "overlay_error.png")
+    return [(angle, f"overlay_angle.png: joint angle of {what}, the reference dashed on top, stops and strike marked"),
+            (error, f"overlay_error.png: measured minus reference angle of {what}")]

@@ -15,6 +15,8 @@ import numpy as np
 
 from muscle_sim import safety
 from muscle_sim.records import read_log, write_json_atomic
+from muscle_sim.report import config_text, write_report
+from muscle_sim.tables import METRIC_COLUMNS, TRIAL, Column, cells
 from muscle_sim.runs import run_trial
 from muscle_sim.threads import single_blas_thread
 
@@ -23,7 +25,7 @@ from .modelfree import SPSALearner
 from .simple import ReplayProfile
 
 METHODS = ("norm-optimal", "gradient", "spsa")
-METRIC_KEYS = ("rms_error_deg", "strike_angle_error_deg", "strike_speed_error_pct", "peak_pressure_kpa")
+METRIC_KEYS = tuple(c.key for c in METRIC_COLUMNS)
 
 
 def make_learner(setup, method: str, trials: int, seed: int):
@@ -118,9 +120,24 @@ def tune(setup, method: str, trials: int, seed: int, out, resume: bool = False, 
     summary["verdict"] = verdict(rows)
     theta = final_theta(learner, state)
     learner.profile(theta, method=method, final=True).write_csv(out / "final_profile.csv")
-    _plots(setup, out, rows)
+    figures = _plots(setup, out, rows)
     write_json_atomic(out / "summary.json", summary)
+    _report(setup, out, summary, figures)
     return summary
+
+
+def _report(setup, out: Path, summary: dict, figures) -> None:
+    """report.html of a tune folder: the trial table, verdict and next action, figures, config."""
+    verdict_ = summary.get("verdict") or {}
+    rows = [{**r, "rejected": "rejected" if r.get("guard") else ""} for r in summary["trials"]]
+    columns = METRIC_COLUMNS + (Column("rejected", "rejected"),)
+    title = (f"tune of {setup.config.source} with {summary['method']}: {len(rows)} of {summary['trials_planned']} "
+             f"trials, seed {summary['seed']}")
+    notes = [f"{summary['message']}; best trial {summary['best_trial']}"]
+    if verdict_:
+        notes.append(f"verdict: {verdict_['message']}")
+    write_report(out, title, cells(rows, columns, TRIAL), config_text(setup.config),
+                 summary["cautions"] + [safety.HARDWARE], verdict_.get("next_action", "–"), figures, notes=notes)
 
 
 #: A strike counts as reached within these (the task's precision goal).
@@ -202,29 +219,35 @@ def verdict(rows, window: int = 4) -> dict:
             "next_action": "run more trials (`pamjoint tune --resume`)"}
 
 
-def _plots(setup, out: Path, rows) -> None:
-    """learning_curve.png and trajectories.png (first, best and last trial)."""
+def _plots(setup, out: Path, rows) -> list:
+    """learning_curve.png and trajectories.png (first, best and last trial); returns
+    ``(path, caption)`` pairs for the report."""
     if not rows:
-        return
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-
-    from muscle_sim.plotting import plot_angle, plot_learning_curve
+        return []
+    from muscle_sim.plotting import new_figure, plot_learning_curve, plot_trial_stack
     from muscle_sim.records import Rollout, save_figure_atomic
 
-    fig, ax = plt.subplots(figsize=(7, 4), layout="constrained")
-    plot_learning_curve(rows, ax=ax)
-    save_figure_atomic(fig, out / "learning_curve.png")
-    plt.close(fig)
+    name = setup.config.get("name") or "tune"
+    fig, axes = new_figure(3, 1, figsize=(7.5, 7), sharex=True)
+    plot_learning_curve(rows, axes[:, 0], goals=(STRIKE_ANGLE_TOLERANCE_DEG, STRIKE_SPEED_TOLERANCE_PCT))
+    fig.suptitle(f"{name}: errors per learning trial", fontsize="medium")
+    curve = save_figure_atomic(fig, out / "learning_curve.png")
     best = int(np.nanargmin([r["cost"] for r in rows]))
     picks = sorted({0, best, len(rows) - 1})
     shown = [Rollout.read_csv(_paths(out, i)[2]) for i in picks]
-    fig, ax = plt.subplots(figsize=(7, 4), layout="constrained")
-    plot_angle(shown, ax=ax, labels=[f"trial {i}" + (" (best)" if i == best else "") for i in picks])
-    save_figure_atomic(fig, out / "trajectories.png")
-    plt.close(fig)
+    fig, _ = new_figure(0, figsize=(11, 8))
+    j = setup.plant.joint
+    plot_trial_stack(fig, shown, setup.task, (j.lower_stop, j.upper_stop), setup.rated_pressure,
+                     labels=[f"trial {i}" + {(True, True): " (best, last)", (True, False): " (best)",
+                                             (False, True): " (last)", (False, False): ""}[(i == best, i == len(rows) - 1)]
+                             for i in picks],
+                     detail=picks.index(best), detail_label=f"best trial {best}")
+    fig.suptitle(f"{name}: trials {', '.join(map(str, picks))} of {len(rows)} (first, best, last)", fontsize="medium")
+    traj = save_figure_atomic(fig, out / "trajectories.png")
+    return [(curve, "learning_curve.png: swing RMS error, strike angle error and strike speed error per trial, "
+                    "the precision goal shaded; rejected (guard) and faulted trials marked"),
+            (traj, "trajectories.png: joint angle of the first, best and last trial against the reference, pressures "
+                   "and commands of the best trial, the strike window enlarged on the right")]
 
 
 def _summary(setup, method, seed, trials, rows, best, status, message) -> dict:

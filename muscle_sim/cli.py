@@ -10,7 +10,7 @@ from pathlib import Path
 
 import numpy as np
 
-from . import safety
+from . import safety, tables
 from .errors import ConfigError, DataError, ParameterError
 from .threads import single_blas_thread
 from .units import UnitError, to_si
@@ -87,47 +87,64 @@ def _out_dir(args, kind: str) -> Path:
     return new_run_dir(kind)
 
 
-def cmd_muscle(args) -> int:
-    """Force table and force–contraction–pressure map of the configured muscle."""
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-
-    from . import config as cfgmod
-    from .muscle_map import build_map, format_table, map_to_dict
-    from .plotting import plot_force_curves, plot_force_map
+def cmd_joint(args) -> int:
+    """Available torque and stiffness of the antagonistic joint over its angle range."""
+    from .joint_view import ANGLE, build_view, format_table, swing_extremes, table_columns, table_rows, view_to_dict
+    from .muscle_map import format_table as muscle_table
+    from .plotting import new_figure, plot_joint_stiffness, plot_joint_torque
     from .records import save_figure_atomic, write_json_atomic
+    from .report import config_text, write_report
+    from .simulation import Setup
 
-    cfg = cfgmod.load(args.config)
-    params = cfgmod.muscle_params(cfg)
-    settings = cfg.get("muscle_map")
-    pressures = _pressure_list(args.pressures) if args.pressures else settings["pressures"]
-    mmap = build_map(params, pressures, settings["contraction_step"], settings["usable_fraction"])
-    out = _out_dir(args, "muscle")
-
-    fig, (ax1, ax2) = plt.subplots(1, 2, figsize=(11, 4.5), layout="constrained")
-    plot_force_curves(mmap, ax=ax1)
-    plot_force_map(mmap, ax=ax2)
-    fig.suptitle(f"{cfg.get('name') or 'muscle'}: static force of one muscle")
-    png = save_figure_atomic(fig, out / "muscle_map.png")
-    plt.close(fig)
-    data = {"config": cfg.source, "config_hash": cfg.digest, **map_to_dict(mmap),
-            "cautions": [safety.over_rated(p / 1e5, params.rated_pressure / 1e5)
-                         for p in mmap.pressures[mmap.over_rated]],
+    setup = Setup.from_config(args.config)
+    cfg = setup.config
+    levels = _pressure_list(args.pressures) if args.pressures else None
+    view = build_view(setup, levels)
+    out = _out_dir(args, "joint")
+    fig, axes = new_figure(2, 1, figsize=(10.5, 7.5), sharex=True)
+    plot_joint_torque(view, ax=axes[0, 0])
+    plot_joint_stiffness(view, ax=axes[1, 0])
+    fig.suptitle(f"{cfg.get('name') or 'joint'}: what the muscle pair can do between the end stops")
+    png = save_figure_atomic(fig, out / "joint_view.png")
+    rated_bar = setup.rated_pressure / 1e5
+    cautions = [safety.over_rated(p / 1e5, rated_bar) for p in view.levels[view.over_rated]]
+    data = {"config": cfg.source, "config_hash": cfg.digest, **view_to_dict(view), "cautions": cautions,
             "safety": safety.GENERAL, "plot": str(png)}
-    write_json_atomic(out / "muscle_map.json", data)
+    m = setup.plant.muscle
+    weak = swing_extremes(view)
+    pa, pb = view.hold_pressures
+    summary = [
+        f"joint of {cfg.source}: pulley radius {setup.plant.joint.pulley_radius * 1e3:g} mm, end stops "
+        f"{math.degrees(view.lower_stop):+.0f} .. {math.degrees(view.upper_stop):+.0f} deg, task swing "
+        f"{math.degrees(view.swing[0]):+.1f} .. {math.degrees(view.swing[1]):+.1f} deg, rated pressure {rated_bar:g} bar",
+        f"over the swing with one muscle at {view.levels[-1] / 1e5:g} bar: at least {weak['toward_plus_nm']:+.2f} N m "
+        f"toward +angle (A) and {weak['toward_minus_nm']:+.2f} N m toward -angle (B)",
+        f"holding {math.degrees(view.hold_angle):+g} deg: A {pa / 1e5:.2f} bar, B {pb / 1e5:.2f} bar, stiffness "
+        f"{view.hold_stiffness:.1f} N m/rad",
+        f"one muscle (rest length {m.rest_length * 1e3:g} mm, rest radius {m.rest_radius * 1e3:g} mm, braid "
+        f"{math.degrees(m.rest_braid_angle):.1f} deg): force vanishes at {data['muscle']['max_contraction_pct']:.1f} % "
+        f"contraction; between the stops A works at {100 * view.contraction_a.min():.1f} .. "
+        f"{100 * view.contraction_a.max():.1f} %, B at {100 * view.contraction_b.min():.1f} .. "
+        f"{100 * view.contraction_b.max():.1f} %" + (" (below 0: slack)" if min(view.contraction_a.min(),
+                                                   view.contraction_b.min()) < 0 else "")]
+    joint_table = format_table(view)
+    used = np.concatenate([view.contraction_a, view.contraction_b])
+    single = muscle_table(view.muscle_map, (max(float(used.min()), 0.0), float(used.max())))
+    write_json_atomic(out / "joint_view.json", data)
+    write_report(out, f"joint view of {cfg.source}", tables.cells(table_rows(view), table_columns(view), ANGLE),
+                 config_text(cfg),
+cautions, "size the strike with `pamjoint plan` on this config; the swing band must sit where "
+                 "the torque toward each side covers the strike and the return", [png],
+                 notes=summary + ["", single])
     if args.json:
         return _print_json(data)
-    print(f"muscle of {cfg.source}: rest length {params.rest_length * 1e3:g} mm, rest radius "
-          f"{params.rest_radius * 1e3:g} mm, rest braid angle {math.degrees(params.rest_braid_angle):.2f} deg")
-    print(f"maximum contraction {data['max_contraction_pct']:.1f} %, usable up to "
-          f"{data['usable_contraction_pct']:.1f} %; volume {data['rest_volume_cm3']:.1f} cm^3 at rest, "
-          f"{data['max_volume_cm3']:.1f} cm^3 fully contracted")
-    print(format_table(mmap))
-    for line in data["cautions"]:
+    for line in summary:
         print(line)
-    print(f"wrote {png} and {out / 'muscle_map.json'}")
+    print(joint_table)
+    print(single)
+    for line in cautions:
+        print(line)
+    print(f"wrote {png}, {out / 'joint_view.json'} and {out / 'report.html'}")
     print(safety.GENERAL)
     return 0
 
@@ -186,11 +203,11 @@ def cmd_check(args) -> int:
             if isinstance(value, dict):
                 show(value, f"{prefix}{key}.")
             else:
-                print(f"  {prefix}{key} = {value!r}")
+                print(f"  {prefix}{key} = {tables.value_text(value)}")
 
     show(cfg.values)
     for key, value in resolved["derived"].items():
-        print(f"  derived {key} = {value:.6g}")
+        print(f"  derived {key} = {tables.number(value)}")
     _print_cautions(setup)
     return 0
 
@@ -215,28 +232,13 @@ def cmd_run(args) -> int:
     if args.json:
         return _print_json(summary)
     print(f"{args.episodes} episode(s) of {setup.config.source} with controller '{controller.name}', seed {args.seed}")
-    print(f"{'episode':>7} {'rms [deg]':>10} {'strike angle err [deg]':>23} {'speed err [%]':>14} {'peak [kPa]':>11}")
-    for row in summary["episodes"]:
-        print(f"{row['episode']:>7} {row['rms_error_deg']:>10.3f} {row['strike_angle_error_deg']:>23.3f} "
-              f"{row['strike_speed_error_pct']:>14.2f} {row['peak_pressure_kpa']:>11.1f}"
-              + (f"  FAULT: {row['fault']}" if row["fault"] else ""))
+    for line in tables.text_table(summary["episodes"], tables.METRIC_COLUMNS, tables.EPISODE):
+        print(line)
     for line in summary["cautions"]:
         print(line)
-    print(f"wrote {out}/summary.json, rollouts/ and plots")
+    print(f"wrote {out}/summary.json, rollouts/, episodes.png and report.html")
     print(safety.GENERAL)
     return 0
-
-
-def _metric_line(label, m) -> str:
-    def f(v, spec):
-        return format(v, spec) if isinstance(v, (int, float)) and v == v else "n/a"
-
-    return (f"{label:>20} {f(m['rms_error_deg'], '10.3f')} {f(m['strike_angle_error_deg'], '+12.3f')} "
-            f"{f(m['strike_speed_error_pct'], '+12.2f')} {f(m['peak_pressure_kpa'], '10.1f')}"
-            + (f"  FAULT: {m['fault']}" if m.get("fault") else ""))
-
-
-_METRIC_HEAD = (f"{'':>20} {'rms [deg]':>10} {'strike [deg]':>12} {'speed [%]':>12} {'peak [kPa]':>10}")
 
 
 def cmd_tune(args) -> int:
@@ -258,11 +260,11 @@ def cmd_tune(args) -> int:
     _print_cautions(setup)
     if not args.json:
         print(f"tuning {setup.config.source} with {method} for {trials} trials (seed {args.seed}) into {out}")
-        print(_METRIC_HEAD.replace(" " * 20, f"{'trial':>20}", 1))
+        print(tables.header_line(tables.METRIC_COLUMNS, tables.TRIAL))
 
     def progress(row):
         if not args.json:
-            print(_metric_line(str(row["trial"]), row), flush=True)
+            print(tables.row_line(row, tables.METRIC_COLUMNS, tables.TRIAL), flush=True)
         return False
 
     try:
@@ -273,8 +275,7 @@ def cmd_tune(args) -> int:
     if args.json:
         return _print_json(summary)
     best = summary["trials"][summary["best_trial"]]
-    print(f"{summary['message']}; best trial {summary['best_trial']}: rms {best['rms_error_deg']:.3f} deg, "
-          f"strike {best['strike_angle_error_deg']:+.3f} deg, speed {best['strike_speed_error_pct']:+.2f} %")
+    print(f"{summary['message']}; best trial {summary['best_trial']}: {tables.metric_words(best)}")
     verdict = summary.get("verdict") or {}
     if verdict:
         print(f"verdict: {verdict['message']}; next: {verdict['next_action']}")
@@ -297,9 +298,9 @@ def cmd_compare(args) -> int:
     if args.json:
         return _print_json(data)
     print(f"comparison on {setup.config.source}, seed {args.seed}, after {trials} learning trials:")
-    print(_METRIC_HEAD.replace(" " * 20, f"{'controller':>20}", 1))
-    for name, m in data["controllers"].items():
-        print(_metric_line(name, m))
+    rows = [{"controller": name, **m} for name, m in data["controllers"].items()]
+    for line in tables.text_table(rows, tables.METRIC_COLUMNS, tables.CONTROLLER):
+        print(line)
     print(feedback_line(data["feedback"]))
     print(f"wrote {out}/comparison.json, comparison.md, overlay_angle.png, overlay_error.png")
     print(safety.GENERAL)
@@ -343,8 +344,7 @@ def cmd_learn_step(args) -> int:
     for note in report["log_notes"]:
         print(f"note: {note}")
     lt = report["logged_trial"]
-    print(f"logged trial: rms {lt['rms_error_deg']:.3f} deg, strike angle {lt['strike_angle_error_deg']:+.3f} deg, "
-          f"strike speed {lt['strike_speed_error_pct']:+.2f} %")
+    print(f"logged trial: {tables.metric_words(lt)}")
     print(f"update: {result.message}; cost {result.cost:.4g} -> predicted {result.predicted_cost:.4g}; "
           f"active limits {result.active_constraints}; largest change {result.step_norm_kpa:.1f} kPa; "
           f"peak command {report['peak_command_kpa']:.0f} kPa")
@@ -521,13 +521,63 @@ def cmd_identify(args) -> int:
     return 0
 
 
+def _plan_figure(setup, result, t):
+    """plan.png: the planned swing against the task reference with stops, angle limits and the
+    strike; the planned commands of both muscles below, on the same time axis."""
+    from .plotting import (COLOR_A, COLOR_B, mark_stops, mark_strike, new_figure, REFERENCE_STYLE)
+    from .tasks import reference
+
+    task, j = setup.task, setup.plant.joint
+    fig, axes = new_figure(2, 1, figsize=(8, 6.5), sharex=True)
+    ax1, ax2 = axes[:, 0]
+    ax1.plot(t, np.degrees(reference(task, t)[0]), label="task reference", **REFERENCE_STYLE)
+    ax1.plot(t, np.degrees(result.swing), color="#4c5bd4", lw=1.6, label="planned swing (prior model)")
+    ax1.plot([task.strike_time], [math.degrees(task.strike_angle)], marker="o", mfc="none", mec="k", ms=8, ls="none",
+             zorder=11, label="strike target")
+    margin = setup.config.get("learning.angle_margin")
+    for q in (j.lower_stop + margin, j.upper_stop - margin):
+        ax1.axhline(math.degrees(q), color="0.45", lw=0.8, ls="--",
+                    label="angle limit (stop less margin)" if q < 0 else None)
+    mark_stops(ax1, j.lower_stop, j.upper_stop)
+    mark_strike(ax1, task.strike_time)
+    ax1.set_ylabel("joint angle [deg]")
+    ax1.set_title("planned swing", fontsize="small", loc="left")
+    ax1.legend(fontsize="x-small", loc="upper left", bbox_to_anchor=(1.01, 1.0), borderaxespad=0.0)
+    p = result.profile
+    ax2.step(p.t, p.commands[:, 0] / 1e5, where="post", color=COLOR_A, label="command A (pulls toward +angle)")
+    ax2.step(p.t, p.commands[:, 1] / 1e5, where="post", color=COLOR_B, label="command B (pulls toward −angle)")
+    ax2.axhline(setup.rated_pressure / 1e5, color="0.2", lw=1, ls="-.", label=f"rated {setup.rated_pressure / 1e5:g} bar")
+    mark_strike(ax2, task.strike_time, label=False)
+    ax2.set_ylabel("command [bar gauge]")
+    ax2.set_xlabel("time [s]")
+    ax2.set_title("planned pressure commands", fontsize="small", loc="left")
+    ax2.legend(fontsize="x-small", loc="upper left", bbox_to_anchor=(1.01, 1.0), borderaxespad=0.0)
+    fig.suptitle(f"{setup.config.get('name') or 'plan'}: strike planned on the prior model ({result.objective})",
+                 fontsize="medium")
+    return fig
+
+
+def _plan_report(setup, result, out: Path, png) -> None:
+    from .report import config_text, write_report
+
+    task = setup.task
+    rows = [["quantity", "planned", "wanted"],
+            ["strike angle [deg]", f"{math.degrees(result.strike_angle):+.3f}", f"{math.degrees(task.strike_angle):+.3f}"],
+            ["strike speed [rad/s]", f"{result.strike_speed:.3f}", f"{task.strike_speed:.3f}"],
+            [f"{result.objective} [bar]", f"{result.objective_value:.3f}", tables.MISSING]]
+    rows += [["active limit", line, tables.MISSING] for line in result.active_limits]
+    next_step = (f"tune from this profile: `pamjoint tune {setup.config.source} --start {out / 'profile.csv'}`"
+                 if result.success else "the strike is out of reach: " + "; ".join(result.suggestions or ["relax the task"]))
+    cautions = [safety.HARDWARE]
+    if setup.over_rated:
+        cautions.insert(0, safety.over_rated(setup.plant.pneumatics.supply_pressure / 1e5, setup.rated_pressure / 1e5))
+    write_report(out, f"plan of {setup.config.source} on the prior model", rows, config_text(setup.config), cautions,
+                 next_step, [(png, "plan.png: planned swing against the task reference with stops, angle limits and "
+                                   "strike; the planned commands of both muscles below")], notes=[result.message])
+
+
 def cmd_plan(args) -> int:
     """Plan the strike offline on the prior model."""
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-
     from controllers.planning import plan
     from .records import save_figure_atomic, write_json_atomic, write_text_atomic
     from .simulation import Setup
@@ -551,19 +601,7 @@ def cmd_plan(args) -> int:
     lines = ["# planned swing of the prior model", "time [s],reference [deg]"]
     lines += [f"{a:.9g},{math.degrees(q):.9g}" for a, q in zip(t, result.swing)]
     write_text_atomic(out / "reference.csv", "\n".join(lines) + "\n")
-    fig, (ax1, ax2) = plt.subplots(2, 1, figsize=(7, 6), sharex=True, layout="constrained")
-    from .tasks import reference
-
-    ax1.plot(t, np.degrees(reference(task, t)[0]), color="0.6", lw=2, label="task reference")
-    ax1.plot(t, np.degrees(result.swing), label="planned swing (prior)")
-    ax1.plot([task.strike_time], [math.degrees(task.strike_angle)], "kx", label="strike")
-    ax1.set_ylabel("angle [deg]")
-    ax1.legend(fontsize="small")
-    ax2.step(result.profile.t, result.profile.commands / 1e5, where="post")
-    ax2.set_ylabel("command [bar]")
-    ax2.set_xlabel("time [s]")
-    save_figure_atomic(fig, out / "plan.png")
-    plt.close(fig)
+    png = save_figure_atomic(_plan_figure(setup, result, t), out / "plan.png")
     report = {"success": result.success, "status": result.status, "message": result.message,
               "misses": result.misses, "objective": result.objective, "objective_value": result.objective_value,
               "strike_angle_deg": math.degrees(result.strike_angle), "strike_speed_rad_s": result.strike_speed,
@@ -571,6 +609,7 @@ def cmd_plan(args) -> int:
               "suggestions": result.suggestions, "profile": str(out / "profile.csv"),
               "safety": safety.GENERAL + " " + safety.HARDWARE}
     write_json_atomic(out / "plan.json", report)
+    _plan_report(setup, result, out, png)
     if args.json:
         return _print_json(report)
     print(f"plan of {setup.config.source} on the prior model, minimising {result.objective}: {result.message}")
@@ -581,7 +620,8 @@ def cmd_plan(args) -> int:
         print(f"  active limit: {line}")
     for line in result.suggestions:
         print(f"  would help: {line}")
-    print(f"wrote {out}/profile.csv, reference.csv, plan.json, plan.png (start tuning with --start {out}/profile.csv)")
+    print(f"wrote {out}/profile.csv, reference.csv, plan.json, plan.png, report.html (start tuning with --start "
+          f"{out}/profile.csv)")
     print(safety.HARDWARE)
     return 0
 
@@ -609,13 +649,13 @@ def build_parser() -> argparse.ArgumentParser:
     parser.add_argument("--version", action="version", version=f"pamjoint {_package_version()}")
     sub = parser.add_subparsers(dest="command", required=True, parser_class=_Parser)
 
-    p = sub.add_parser("muscle", help="force table and force map of the configured muscle")
-    p.add_argument("config", help="YAML config (the plant.muscle section is used)")
-    p.add_argument("--pressures", help="gauge pressures to tabulate, e.g. '1,2,3,4,5,6 bar' "
-                   "(default: muscle_map.pressures, else 1 bar steps up to the rated pressure)")
+    p = sub.add_parser("joint", help="available torque and stiffness of the muscle pair over the joint angle")
+    p.add_argument("config", help="YAML config (the plant's muscles and joint, and the task)")
+    p.add_argument("--pressures", help="pressure levels, e.g. '2,4,6 bar': one muscle at the level for torque, "
+                   "both for stiffness (default: a third, two thirds and all of the rated pressure)")
     _add_out(p)
     p.add_argument("--json", action="store_true", help="print the numbers as JSON")
-    p.set_defaults(func=cmd_muscle)
+    p.set_defaults(func=cmd_joint)
 
     p = sub.add_parser("check", help="validate a config and print the resolved SI values")
     p.add_argument("config", help="YAML config")

@@ -78,8 +78,8 @@ MUSCLE_KEYS = _section(
 )
 
 MUSCLE_MAP_KEYS = _section(
-    pressures=Key("pressure", "gauge pressures tabulated by `pamjoint muscle`", many=True, low=0,
-                  default=None, unit="bar"),
+    pressures=Key("pressure", "gauge pressures of the single-muscle force table of `pamjoint joint`", many=True,
+                  low=0, default=None, unit="bar"),
     contraction_step=Key("dimensionless", "contraction step of the force table", default=0.025, low=0,
                          high=0.2, low_open=True),
     usable_fraction=Key("dimensionless", "share of the maximum contraction counted as usable",

@@ -64,22 +64,24 @@ def map_to_dict(m: MuscleMap) -> dict:
     }
 
 
-def format_table(m: MuscleMap) -> str:
-    """Readable force table; '*' marks the rated pressure, '!' pressures above it, '-' rows
-    beyond the usable contraction."""
+def format_table(m: MuscleMap, working=None) -> str:
+    """Readable force table of one muscle; '*' marks the rated pressure, '!' pressures above it,
+    '|' the rows within ``working`` (lowest, highest contraction the joint uses between its stops)."""
     heads = []
     for pa, over in zip(m.pressures, m.over_rated):
         mark = "!" if over else ("*" if math.isclose(pa, m.params.rated_pressure) else "")
         heads.append(f"{pa / 1e5:g} bar{mark}")
     width = max(9, max(len(h) for h in heads) + 1)
-    lines = ["force [N] by contraction (rows) and gauge pressure (columns)",
+    lines = ["one muscle: force [N] by contraction (rows) and gauge pressure (columns)",
              "contraction".ljust(13) + "".join(h.rjust(width) for h in heads)]
+    step = m.contractions[1] - m.contractions[0] if m.contractions.size > 1 else 0.0
     for eps, row in zip(m.contractions, m.force):
-        tag = " " if eps <= m.usable_contraction + 1e-12 else "-"
-        lines.append(f"{100 * eps:9.1f} % {tag} " + "".join(f"{f:{width}.1f}" for f in row))
-    lines.append(f"* rated pressure {m.params.rated_pressure / 1e5:g} bar gauge; "
-                 f"- beyond the usable contraction {100 * m.usable_contraction:.1f} % "
-                 f"(force is zero at {100 * m.max_contraction:.1f} %)")
+        inside = working is not None and working[0] - step < eps < working[1] + step
+        lines.append(f"{100 * eps:9.1f} % {'|' if inside else ' '} " + "".join(f"{f:{width}.1f}" for f in row))
+    lines.append(f"* rated pressure {m.params.rated_pressure / 1e5:g} bar gauge; force is zero at "
+                 f"{100 * m.max_contraction:.1f} % contraction"
+                 + (f"; | rows the joint uses between its stops ({100 * working[0]:.1f} .. {100 * working[1]:.1f} %)"
+                    if working is not None else ""))
     if m.over_rated.any():
         lines.append("! above the rated pressure")
     return "\n".join(lines)

@@ -10,6 +10,8 @@ from . import safety
 from .errors import SimulationDiverged
 from .records import save_figure_atomic, write_json_atomic
 from .simulation import Setup, StrikeTrial
+from .report import config_text, write_report
+from .tables import EPISODE, METRIC_COLUMNS, cell, cells, metric_words
 from .tasks import strike_metrics
 
 
@@ -62,23 +64,14 @@ def command_cautions(setup: Setup, rows: list, label: str = "episode") -> list:
 
 
 def _progress(i: int, n: int, m: dict, stream) -> None:
-    stream.write(f"episode {i + 1}/{n}: rms {m['rms_error_deg']:.3f} deg, strike angle "
-                 f"{m['strike_angle_error_deg']:+.3f} deg, strike speed {m['strike_speed_error_pct']:+.2f} %, "
-                 f"peak {m['peak_pressure_kpa']:.0f} kPa\n")
+    stream.write(f"episode {i + 1}/{n}: {metric_words(m)}, peak {cell(m['peak_pressure_kpa'], '.1f')} kPa\n")
     stream.flush()
 
 
 def run_episodes(setup: Setup, controller, episodes: int, seed: int, out: Path, progress=sys.stderr) -> dict:
     """Run ``episodes`` trials (trial index = episode, so drift applies) and write the run folder:
-    ``rollouts/episode-NNNN.csv``, ``angle.png``, ``pressures.png``, ``commands.png`` and last
-    ``summary.json``; each file is written atomically."""
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-
-    from .plotting import plot_angle, plot_commands, plot_pressures
-
+    ``rollouts/episode-NNNN.csv``, ``episodes.png``, ``summary.json`` and ``report.html``; each
+    file is written atomically."""
     out = Path(out)
     rng = np.random.default_rng(seed)
     rows, rollouts = [], []
@@ -89,16 +82,7 @@ def run_episodes(setup: Setup, controller, episodes: int, seed: int, out: Path, 
         rows.append({"episode": i, **metrics})
         if progress is not None:
             _progress(i, episodes, metrics, progress)
-    shown = rollouts if len(rollouts) <= 6 else rollouts[:: max(1, len(rollouts) // 6)]
-    for name, draw in (("angle.png", lambda ax: plot_angle(shown, ax=ax)),
-                       ("pressures.png", lambda ax: plot_pressures(rollouts[-1], ax=ax,
-                                                                   rated_pressure=setup.rated_pressure)),
-                       ("commands.png", lambda ax: plot_commands(rollouts[-1], ax=ax))):
-        fig, ax = plt.subplots(figsize=(7, 4), layout="constrained")
-        draw(ax)
-        ax.set_title(f"{setup.config.get('name') or 'run'}: {controller.name}")
-        save_figure_atomic(fig, out / name)
-        plt.close(fig)
+    png = plot_episodes(setup, controller.name, rollouts, out / "episodes.png")
     cautions = []
     if setup.over_rated:
         cautions.append(safety.over_rated(setup.plant.pneumatics.supply_pressure / 1e5, setup.rated_pressure / 1e5))
@@ -106,4 +90,44 @@ def run_episodes(setup: Setup, controller, episodes: int, seed: int, out: Path, 
     summary = {"config": setup.config.source, "config_hash": setup.config.digest, "seed": seed,
                "controller": controller.name, "episodes": rows, "cautions": cautions, "safety": safety.GENERAL}
     write_json_atomic(out / "summary.json", summary)
+    faults = [str(r["episode"]) for r in rows if r["fault"]]
+    source = setup.config.source
+    if faults:
+        next_step = (f"episode(s) {', '.join(faults)} faulted: lower the commanded pressures or check the end "
+                     "stops before running again")
+    else:
+        next_step = (f"learn a profile for this strike with `pamjoint tune {source}` (or plan one first with "
+                     f"`pamjoint plan {source}`)")
+    write_report(out, f"run of {source}: {episodes} episode(s) with {controller.name}, seed {seed}",
+                 cells(rows, METRIC_COLUMNS, EPISODE), config_text(setup.config), cautions, next_step,
+                 [(png, "episodes.png: joint angle of the episodes against the reference (top), measured "
+                        "pressures and commands of the last episode, with the strike window enlarged on the right")])
     return summary
+
+
+#: At most this many episodes are drawn in ``episodes.png`` (evenly picked; the title says which).
+MAX_SHOWN = 8
+
+
+def shown_episodes(n: int) -> list:
+    """Indices of the episodes ``episodes.png`` draws: all up to :data:`MAX_SHOWN`, else evenly
+    picked ones, the first and the last always among them."""
+    if n <= MAX_SHOWN:
+        return list(range(n))
+    return sorted({int(round(i)) for i in np.linspace(0, n - 1, MAX_SHOWN)})
+
+
+def plot_episodes(setup: Setup, controller: str, rollouts, path) -> Path:
+    """``episodes.png``: the stacked trial figure of a run; its title names the episodes drawn."""
+    from .plotting import new_figure, plot_trial_stack
+
+    picks = shown_episodes(len(rollouts))
+    fig, _ = new_figure(0, figsize=(11, 8))
+    j = setup.plant.joint
+    plot_trial_stack(fig, [rollouts[i] for i in picks], setup.task, (j.lower_stop, j.upper_stop),
+                     setup.rated_pressure, labels=[f"episode {i}" for i in picks],
+                     detail_label=f"episode {picks[-1]} (last of {len(rollouts)})")
+    which = (f"all {len(rollouts)} episode(s)" if len(picks) == len(rollouts) else
+             f"episodes {', '.join(map(str, picks))} of {len(rollouts)}")
+    fig.suptitle(f"{setup.config.get('name') or 'run'}: {controller}, {which}", fontsize="medium")
+    return save_figure_atomic(fig, path)

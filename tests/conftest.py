@@ -53,3 +53,24 @@ def strike_commands(setup, n_steps=500, kp=2e5, kd=4e3):
         cmd.append(u)
         stepper.step(u)
     return x0, hold, np.array(cmd)
+
+
+def check_report(folder, figures: int = 1) -> str:
+    """Assert that ``folder/report.html`` is self-contained and complete; returns the page.
+
+    No scripts and no external ``src``/``href``, at least ``figures`` embedded PNGs, the safety
+    wording, a results table, the config and a next step."""
+    import re
+
+    from muscle_sim import safety
+
+    page = (Path(folder) / "report.html").read_text(encoding="utf-8")
+    assert page.startswith("<!DOCTYPE html>") and page.rstrip().endswith("</html>")
+    assert "<script" not in page.lower()
+    links = re.findall(r'(?:src|href)\s*=\s*"([^"]*)"', page, flags=re.I)
+    assert all(link.startswith("data:image/png;base64,") for link in links), links
+    assert not re.search(r'(?:src|href)\s*=\s*["\']?\s*(?:https?:|//)', page, flags=re.I)
+    assert page.count('src="data:image/png;base64,') >= figures
+    assert safety.GENERAL in page.replace("&#x27;", "'")
+    assert "<table>" in page and "Config used" in page and 'class="next"' in page
+    return page

@@ -11,7 +11,7 @@ from controllers.base import PressureProfile
 from muscle_sim import cli
 from muscle_sim.records import Rollout
 
-from conftest import DEMO, DRIFT
+from conftest import DEMO, DRIFT, check_report
 
 
 def test_run_writes_the_run_folder(tmp_path, capsys):
@@ -23,8 +23,9 @@ def test_run_writes_the_run_folder(tmp_path, capsys):
     for row in summary["episodes"]:
         for key in ("rms_error_deg", "strike_angle_error_deg", "strike_speed_error_pct", "peak_pressure_kpa"):
             assert key in row
-    for name in ("angle.png", "pressures.png", "commands.png"):
-        assert (out / name).read_bytes()[:4] == b"\x89PNG"
+    assert (out / "episodes.png").read_bytes()[:4] == b"\x89PNG"
+    page = check_report(out)
+    assert "episode" in page and "strike angle err [deg]" in page
     r = Rollout.read_csv(out / "rollouts" / "episode-0002.csv")
     assert r.t.size == 401 and r.metadata["trial"] == 2
     assert not list(out.rglob("*.part"))

@@ -9,7 +9,7 @@ import time
 
 from muscle_sim import cli
 
-from conftest import DEMO
+from conftest import DEMO, check_report
 
 METRICS = ("rms_error_deg", "strike_angle_error_deg", "strike_speed_error_pct", "peak_pressure_kpa")
 
@@ -29,6 +29,8 @@ def test_tune_writes_every_trial(tmp_path, capsys):
         assert (out / "rollouts" / f"trial-{i:04d}.csv").exists()
     for name in ("final_profile.csv", "learning_curve.png", "trajectories.png"):
         assert (out / name).exists()
+    page = check_report(out, figures=2)
+    assert summary["verdict"]["next_action"] in page and "reduced pressure" in page
 
 
 def test_kill_9_then_resume_matches_an_uninterrupted_run(tmp_path):
@@ -73,6 +75,8 @@ def test_compare_writes_the_table_of_all_controllers(tmp_path, capsys):
         assert abs(learned[key]) < abs(model[key])
     assert "| learned |" in (out / "comparison.md").read_text()
     assert (out / "overlay_angle.png").exists()
+    assert "<td>learned</td>" in check_report(out, figures=2)
+    check_report(out / "learned", figures=2)
     # the feedback's gains were placed on the prior identified from the last learning trial
     feedback = data["feedback"]
     assert feedback["prior"] == "identified" and feedback["identified_from_trials"] == [7]

@@ -13,16 +13,17 @@ ROOT = Path(__file__).resolve().parents[1]
 
 LAYERS = {
     "base": ["muscle_sim.errors", "muscle_sim.units", "muscle_sim.compiled", "muscle_sim.threads",
-             "muscle_sim.safety", "muscle_sim.yaml_input"],
+             "muscle_sim.safety", "muscle_sim.yaml_input", "muscle_sim.tables"],
     "physics": ["muscle_sim.params", "muscle_sim.muscle", "muscle_sim.pneumatics", "muscle_sim.joint",
                 "muscle_sim.hysteresis", "muscle_sim.plant", "muscle_sim.integrate", "muscle_sim.sensors",
                 "muscle_sim.drift"],
     "trial": ["muscle_sim.tasks", "muscle_sim.config", "muscle_sim.records", "muscle_sim.simulation",
-              "muscle_sim.runs", "muscle_sim.plotting", "muscle_sim.render", "muscle_sim.scenarios"],
+              "muscle_sim.runs", "muscle_sim.plotting", "muscle_sim.render", "muscle_sim.scenarios",
+              "muscle_sim.report"],
     "controllers": [f"controllers.{p.stem}" for p in sorted((ROOT / "controllers").glob("*.py"))
                     if p.stem != "__init__"],
     "shells": ["muscle_sim.env", "muscle_sim.vector_env"],
-    "face": ["muscle_sim.cli", "muscle_sim.muscle_map", "muscle_sim.calibration"],
+    "face": ["muscle_sim.cli", "muscle_sim.muscle_map", "muscle_sim.joint_view", "muscle_sim.calibration"],
 }
 ORDER = list(LAYERS)
 LAYER_OF = {module: ORDER.index(layer) for layer, modules in LAYERS.items() for module in modules}

@@ -14,7 +14,7 @@ from muscle_sim.integrate import simulate
 from muscle_sim.plant import initial_state
 from muscle_sim.simulation import Setup, home_pressures
 
-from conftest import DEMO
+from conftest import DEMO, check_report
 
 
 def test_plan_meets_the_strike_within_the_limits(tmp_path):
@@ -44,6 +44,7 @@ def test_an_impossible_strike_is_reported_with_its_shortfall(tmp_path, capsys):
     assert 0 < report["max_strike_speed_rad_s"] < 40.0
     assert report["suggestions"] and "reduced pressure" in report["safety"]
     assert (tmp_path / "p" / "profile.csv").exists() and (tmp_path / "p" / "plan.png").exists()
+    assert "out of reach" in check_report(tmp_path / "p")
 
 
 def test_bad_plan_flags_exit_2(tmp_path):
