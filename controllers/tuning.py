@@ -82,6 +82,8 @@ def tune(setup, method: str, trials: int, seed: int, out, resume: bool = False, 
                 or previous.get("seed") != seed:
             raise ValueError(f"--resume: {str(out)!r} was run with another config, method or seed")
         rows = previous["trials"]
+        for stale in out.rglob(".*.part"):            # temp files of writes a kill cut short
+            stale.unlink(missing_ok=True)
         state_path = _paths(out, len(rows))[1]
         if not state_path.exists():
             raise ValueError(f"--resume: {str(state_path)!r} is missing; the run folder is incomplete")
@@ -92,6 +94,8 @@ def tune(setup, method: str, trials: int, seed: int, out, resume: bool = False, 
         p, s, _ = _paths(out, 0)
         learner.profile(state.theta, trial=0, method=method).write_csv(p)
         write_json_atomic(s, state.to_dict())
+        # a summary from the start: a run killed during its first trial can be resumed too
+        write_json_atomic(out / "summary.json", _summary(setup, method, seed, trials, [], None, 1, "running"))
     status, message = 0, "all trials done"
     for i in range(len(rows), trials):
         profile = learner.profile(state.theta, trial=i, method=method)

@@ -241,19 +241,47 @@ def cmd_run(args) -> int:
     return 0
 
 
+def _saved_tune_options(folder) -> dict:
+    """The options a tune run folder was started with (``tune_options.json``), config path resolved."""
+    path = Path(folder) / "tune_options.json"
+    if not path.is_file():
+        return {}
+    try:
+        saved = json.loads(path.read_text(encoding="utf-8"))
+        if not isinstance(saved, dict):
+            raise ValueError
+    except (ValueError, UnicodeDecodeError):
+        raise BadInput(f"--resume: {str(path)!r} is not a tune options file") from None
+    if saved.get("config"):
+        saved["config"] = str(Path(folder) / saved["config"])
+    return saved
+
+
 def cmd_tune(args) -> int:
     """Learn a feedforward profile trial by trial on the simulated plant."""
     from controllers.base import PressureProfile
     from controllers.tuning import tune
     from .simulation import Setup
 
-    setup = Setup.from_config(args.config)
+    saved = _saved_tune_options(args.resume) if args.resume else {}
+    config = args.config or saved.get("config")
+    if config is None:
+        raise BadInput("config: missing; give the YAML config (or --resume DIR of a run that saved its own)")
+    setup = Setup.from_config(config)
+    if args.trials is None and "trials" in saved:
+        args.trials = saved["trials"]
     trials = _trials(args, setup)
-    method = args.method or setup.config.get("learning.method")
+    method = args.method or saved.get("method") or setup.config.get("learning.method")
+    args.seed = args.seed if args.seed is not None else saved.get("seed", 0)
     if args.resume:
         out = Path(args.resume)
     else:
         out = _out_dir(args, "tune")
+        # the run folder keeps what it was started with, so `tune --resume DIR` alone continues it
+        from .records import write_bytes_atomic, write_json_atomic
+        write_bytes_atomic(out / "config.yaml", Path(config).read_bytes())
+        write_json_atomic(out / "tune_options.json", {"config": "config.yaml", "method": method, "trials": trials,
+                                                      "seed": args.seed, "start": args.start})
     start = PressureProfile.read_csv(args.start) if args.start else None
     if start is not None:
         start.check_grid(setup.task.dt, setup.task.n_steps, args.start)
@@ -677,14 +705,15 @@ def build_parser() -> argparse.ArgumentParser:
     p.set_defaults(func=cmd_run)
 
     p = sub.add_parser("tune", help="learn the feedforward profile of a strike trial by trial")
-    p.add_argument("config", help="YAML config")
+    p.add_argument("config", nargs="?", help="YAML config (with --resume DIR: default the run's own copy)")
     p.add_argument("--trials", type=int, help="number of trials (default: learning.trials)")
     p.add_argument("--method", choices=("norm-optimal", "gradient", "spsa"),
                    help="update rule (default: learning.method)")
     p.add_argument("--start", help="profile CSV to start from (default: model-only feedforward)")
-    p.add_argument("--seed", type=int, default=0, help="random seed, default 0")
+    p.add_argument("--seed", type=int, help="random seed, default 0 (with --resume: the run's)")
     _add_out(p)
-    p.add_argument("--resume", metavar="DIR", help="continue an interrupted tune run in DIR")
+    p.add_argument("--resume", metavar="DIR", help="continue an interrupted tune run in DIR (config, trials, "
+                                                    "method and seed default to the run's)")
     p.add_argument("--json", action="store_true", help="print the summary as JSON")
     p.set_defaults(func=cmd_tune)
 

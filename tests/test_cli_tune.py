@@ -56,6 +56,28 @@ def test_kill_9_then_resume_matches_an_uninterrupted_run(tmp_path):
     assert (full / "final_profile.csv").read_bytes() == (cut / "final_profile.csv").read_bytes()
 
 
+def test_a_run_killed_in_its_first_trial_resumes_from_its_folder_alone(tmp_path):
+    # derived from the run-folder contract: the folder keeps its config and options, a summary
+    # exists from the start, so `tune --resume DIR` with nothing else continues to the same result
+    full, cut = tmp_path / "full", tmp_path / "cut"
+    args = [sys.executable, "-m", "muscle_sim.cli", "tune", str(DEMO), "--trials", "3", "--seed", "5"]
+    subprocess.run(args + ["--out", str(full)], check=True, capture_output=True)
+    proc = subprocess.Popen(args + ["--out", str(cut)], stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    deadline = time.time() + 60
+    while time.time() < deadline and not (cut / "summary.json").exists():
+        time.sleep(0.002)
+    os.kill(proc.pid, signal.SIGKILL)
+    proc.wait()
+    assert len(json.loads((cut / "summary.json").read_text())["trials"]) < 3
+    (cut / "profiles" / ".state-0001.json.abc.part").write_text("cut short")
+    subprocess.run([sys.executable, "-m", "muscle_sim.cli", "tune", "--resume", str(cut)], check=True,
+                   capture_output=True)
+    assert json.loads((full / "summary.json").read_text())["trials"] == \
+        json.loads((cut / "summary.json").read_text())["trials"]
+    assert (full / "final_profile.csv").read_bytes() == (cut / "final_profile.csv").read_bytes()
+    assert not list(cut.rglob("*.part"))
+
+
 def test_resume_of_a_foreign_folder_is_refused(tmp_path):
     run = subprocess.run([sys.executable, "-m", "muscle_sim.cli", "tune", str(DEMO), "--resume", str(tmp_path)],
                          capture_output=True, text=True)
