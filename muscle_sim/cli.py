@@ -465,6 +465,51 @@ def cmd_calibrate(args) -> int:
     return 0
 
 
+def cmd_preflight(args) -> int:
+    """Check a profile before it goes to hardware; optionally write a reduced-pressure copy."""
+    from controllers.base import PressureProfile
+    from controllers.preflight import preflight, reduced
+    from .simulation import Setup
+
+    setup = Setup.from_config(args.config)
+    profile = PressureProfile.read_csv(args.profile)
+    try:
+        max_rate = to_si(args.max_rate, "pressure_rate") if args.max_rate else None
+        margin = to_si(args.margin, "angle") if args.margin else None
+    except UnitError as exc:
+        raise BadInput(f"--max-rate/--margin: {exc}") from None
+    if args.reduce_to is not None:
+        if args.write is None:
+            raise BadInput("--write: missing; --reduce-to writes the reduced profile there, e.g. --write first.csv")
+        try:
+            profile = reduced(profile, args.reduce_to)
+        except ValueError as exc:
+            raise BadInput(str(exc)) from None
+    try:
+        report = preflight(setup, profile, max_rate, margin)
+    except ValueError as exc:
+        raise BadInput(str(exc)) from None
+    if args.reduce_to is not None:
+        profile.write_csv(args.write)
+        report["written"] = str(args.write)
+    if args.json:
+        return _print_json(report) or (0 if report["passed"] else 1)
+    p = report["predicted"]
+    print(f"profile {args.profile}{f' reduced to {args.reduce_to:g} of its pressures' if args.reduce_to else ''}: "
+          f"peak command {report['peak_command_kpa']:.0f} kPa (rated {report['rated_pressure_bar']:g} bar), "
+          f"peak rate {report['peak_rate_bar_per_s']:.3g} bar/s")
+    print(f"on the prior: stop margin {tables.cell(p['stop_margin_deg'], '.2f')} deg, {tables.metric_words(p)}, "
+          f"fault {p['fault'] or tables.MISSING}")
+    for line in report["findings"]:
+        print(f"FINDING: {line}")
+    print("preflight passed" if report["passed"] else "preflight FAILED: do not run this profile on hardware as is")
+    if report.get("written"):
+        print(f"wrote {report['written']}")
+    print(safety.GENERAL)
+    print(safety.HARDWARE)
+    return 0 if report["passed"] else 1
+
+
 def _identification_table(result) -> list[str]:
     """The parameter table of ``pamjoint identify`` in display units; '*' marks parameters the data
     do not excite (they keep the prior's value)."""
@@ -703,6 +748,18 @@ def build_parser() -> argparse.ArgumentParser:
     _add_out(p)
     p.add_argument("--json", action="store_true", help="print the summary as JSON")
     p.set_defaults(func=cmd_run)
+
+    p = sub.add_parser("preflight", help="check a profile before it goes to hardware: pressure limits, rate, "
+                                          "predicted stop margin on the prior")
+    p.add_argument("profile", help="profile CSV (time, command_a, command_b)")
+    p.add_argument("--config", required=True, help="YAML config of the rig")
+    p.add_argument("--max-rate", help="bound on the command rate, e.g. '150 bar/s' (default: report only)")
+    p.add_argument("--margin", help="least predicted distance to an end stop (default: learning.angle_margin)")
+    p.add_argument("--reduce-to", type=float, metavar="SHARE",
+                   help="scale every command by SHARE (0 < SHARE <= 1) for a first run at reduced pressure")
+    p.add_argument("--write", help="where to write the reduced profile CSV (with --reduce-to)")
+    p.add_argument("--json", action="store_true", help="print the findings as JSON")
+    p.set_defaults(func=cmd_preflight)
 
     p = sub.add_parser("tune", help="learn the feedforward profile of a strike trial by trial")
     p.add_argument("config", nargs="?", help="YAML config (with --resume DIR: default the run's own copy)")
