@@ -39,7 +39,10 @@ def learn_step(setup, log, profile: PressureProfile, state: LearnerState | None 
     learner = make_learner(setup, method, 1, 0)
     if state is None:
         state = learner.initial_state(profile)
-    theta = np.asarray(state.theta, dtype=float) if isinstance(state.theta, list) else np.zeros(0)
+    try:
+        theta = np.asarray(state.theta, dtype=float) if isinstance(state.theta, list) else np.zeros(0)
+    except (TypeError, ValueError):
+        theta = np.zeros(0)
     if theta.shape != (learner.basis.n_params,) or not np.all(np.isfinite(theta)):
         raise DataError(f"--state: theta must be {learner.basis.n_params} finite knot values for this config's "
                         f"trial; this state holds {theta.size} (a state of another config, or damaged)")

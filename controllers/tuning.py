@@ -73,7 +73,10 @@ def tune(setup, method: str, trials: int, seed: int, out, resume: bool = False, 
     out = Path(out)
     learner = make_learner(setup, method, trials, seed)
     rows = []
-    if resume:
+    fresh = not resume
+    if resume and not (out / "summary.json").exists() and (out / "tune_options.json").exists():
+        fresh = True          # killed before its first trial was set up: start it over
+    if not fresh:
         summary_path = out / "summary.json"
         if not summary_path.exists():
             raise ValueError(f"--resume: {str(out)!r} has no summary.json; nothing to resume")
@@ -85,10 +88,12 @@ def tune(setup, method: str, trials: int, seed: int, out, resume: bool = False, 
         for stale in out.rglob(".*.part"):            # temp files of writes a kill cut short
             stale.unlink(missing_ok=True)
         state_path = _paths(out, len(rows))[1]
-        if not state_path.exists():
+        if not state_path.exists() and rows:
             raise ValueError(f"--resume: {str(state_path)!r} is missing; the run folder is incomplete")
-        state = LearnerState.from_dict(json.loads(state_path.read_text()))
-    else:
+        fresh = not state_path.exists()
+        if not fresh:
+            state = LearnerState.from_dict(json.loads(state_path.read_text()))
+    if fresh:
         profile0 = start if start is not None else start_profile(setup)
         state = learner.initial_state(profile0)
         p, s, _ = _paths(out, 0)

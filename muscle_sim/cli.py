@@ -273,6 +273,7 @@ def cmd_tune(args) -> int:
     trials = _trials(args, setup)
     method = args.method or saved.get("method") or setup.config.get("learning.method")
     args.seed = args.seed if args.seed is not None else saved.get("seed", 0)
+    args.start = args.start or saved.get("start")
     if args.resume:
         out = Path(args.resume)
     else:

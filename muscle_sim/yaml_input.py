@@ -102,8 +102,9 @@ def parse_yaml_bytes(data: bytes, where: str):
         raise ConfigError(f"{where}: byte {exc.start} is not UTF-8 text; save the file as UTF-8") from None
     if "\x00" in text:
         raise ConfigError(f"{where}: a NUL character is not allowed in a YAML text")
-    loader = _BoundedLoader(text, where)
+    loader = None
     try:
+        loader = _BoundedLoader(text, where)      # the reader already refuses unprintable characters
         node = loader.get_single_node()
         if node is None:
             return None
@@ -120,4 +121,5 @@ def parse_yaml_bytes(data: bytes, where: str):
     except RecursionError:
         raise ConfigError(f"{where}: nesting too deep to read") from None
     finally:
-        loader.dispose()
+        if loader is not None:
+            loader.dispose()
