@@ -1,6 +1,7 @@
 """`check` is the gate: static conditions that a later command or the env would trip over are
 refused when the config is read, on one line naming the key; whatever passes runs."""
 import math
+import os
 
 import gymnasium as gym
 import numpy as np
@@ -54,7 +55,7 @@ def test_trial_length_and_control_rate_stay_within_stated_bounds(key, value):
     assert _refused(**{key: value}).startswith(key.replace("__", ".") + ": ")
 
 
-@settings(max_examples=20, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@settings(max_examples=int(20 * float(os.environ.get("PAMJOINT_FUZZ_SCALE", "1"))), deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(pre=st.floats(0.02, 0.2), home_bar=st.floats(0.5, 4.5), pulley_mm=st.floats(8.0, 30.0),
        home_deg=st.floats(-40.0, 0.0), payload=st.floats(0.0, 1.0), supply_bar=st.floats(3.0, 6.0))
 def test_whatever_check_accepts_runs_and_resets(pre, home_bar, pulley_mm, home_deg, payload, supply_bar):
