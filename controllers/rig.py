@@ -2,6 +2,7 @@
 from __future__ import annotations
 
 import json
+import math
 from pathlib import Path
 
 import numpy as np
@@ -52,11 +53,19 @@ def learn_step(setup, log, profile: PressureProfile, state: LearnerState | None 
                         "pass the state saved beside this profile")
     if log.command.shape[0] - 1 > task.n_steps:
         raise DataError(f"--rollout: {log.command.shape[0]} rows is more than the task's {task.n_steps + 1}")
+    scale = state.step_scale
+    if isinstance(scale, bool) or not isinstance(scale, (int, float)) or not 0.0 < scale <= 4.0:
+        raise DataError(f"--state: step_scale {str(scale)[:40]!r} is not allowed; must be a number in (0, 4]")
+    if isinstance(state.trial, bool) or not isinstance(state.trial, int) or state.trial < 0:
+        raise DataError(f"--state: trial {str(state.trial)[:40]!r} is not allowed; must be a whole number >= 0")
+    cost = state.best_cost
+    if cost is not None and (isinstance(cost, bool) or not isinstance(cost, (int, float)) or not math.isfinite(cost)):
+        raise DataError(f"--state: best_cost {str(cost)[:40]!r} is not allowed; must be a finite number or null")
     if not isinstance(state.extra, dict):
         raise DataError("--state: 'extra' must be an object (the learner's record); this state is damaged")
     try:
         new_profile, new_state, result = learner.update(log, profile, state)
-    except (TypeError, KeyError) as exc:
+    except (TypeError, KeyError, ValueError, ArithmeticError, np.linalg.LinAlgError) as exc:
         raise DataError(f"--state: the learner's record in it is damaged ({exc.__class__.__name__}); pass the "
                         f"state saved beside the profile") from None
     if not (np.all(np.isfinite(new_profile.commands)) and np.all(np.isfinite(new_state.theta))):
