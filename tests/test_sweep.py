@@ -304,11 +304,12 @@ def test_a_lost_workers_sample_is_run_again(reference, tmp_path):
 
 
 def test_a_failing_sample_is_recorded_and_the_sweep_goes_on(tmp_path, capsys):
-    # a payload drawn below zero is an invalid config for that sample only
-    spec = _spec(samples=6, seed=2, job={"kind": "run", "episodes": 1},
+    # a payload drawn below zero is an invalid config for that sample only; with seed 3 the draws of
+    # samples 0-2 are about 0.096, -0.009 and 0.090 kg (numpy default_rng([3, i, crc32(key)]))
+    spec = _spec(samples=3, seed=3, job={"kind": "run", "episodes": 1},
                  vary={"plant.joint.payload_mass": {"normal": {"mean": "0.05 kg", "std": "0.1 kg"}}})
     path = _write(tmp_path, spec)
-    drawn = [sample_plan(load_spec(path), i)[1]["plant.joint.payload_mass"] for i in range(6)]
+    drawn = [sample_plan(load_spec(path), i)[1]["plant.joint.payload_mass"] for i in range(3)]
     assert any(v < 0 for v in drawn) and any(v >= 0 for v in drawn)
     assert cli.main(["sweep", str(path), "--out", str(tmp_path / "out"), "--workers", "0"]) == 0
     printed = capsys.readouterr()
