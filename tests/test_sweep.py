@@ -39,7 +39,7 @@ def _spec(**changes) -> dict:
 def _write(folder: Path, spec: dict, name: str = "spec.yaml") -> Path:
     folder.mkdir(parents=True, exist_ok=True)
     path = folder / name
-    path.write_text(yaml.safe_dump(spec), encoding="utf-8")
+    path.write_text(yaml.safe_dump(spec, sort_keys=False), encoding="utf-8")
     return path
 
 
