@@ -56,3 +56,20 @@ class ReplayProfile:
     def command(self, k, t, reading):
         a, b = self._rows[k]
         return float(a), float(b)
+
+
+OPEN_LOOP = ("hold", "step", "replay")
+
+
+def open_loop_controller(kind: str, pressures=None, step_at: float | None = None, profile=None,
+                         source: str = "profile"):
+    """The open-loop controller ``kind`` of `pamjoint run` and sweep run jobs (values checked by
+    the caller, SI): ``hold`` (``pressures`` or those holding home), ``step`` (to ``pressures`` at
+    ``step_at`` [s]) or ``replay`` (the :class:`PressureProfile` ``profile`` read from ``source``)."""
+    if kind == "hold":
+        return HoldPressures(tuple(pressures) if pressures is not None else None)
+    if kind == "step":
+        return StepPressures(tuple(pressures), step_at)
+    if kind == "replay":
+        return ReplayProfile(profile, source=source)
+    raise ValueError(f"controller: {kind!r} is not allowed; must be one of {', '.join(OPEN_LOOP)}")

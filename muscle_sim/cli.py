@@ -158,10 +158,11 @@ def _pressure_pair(flag: str, text: str) -> tuple[float, float]:
 
 def _make_controller(args):
     from controllers.base import PressureProfile
-    from controllers.simple import HoldPressures, ReplayProfile, StepPressures
+    from controllers.simple import open_loop_controller
 
     if args.controller == "hold":
-        return HoldPressures(_pressure_pair("--pressures", args.pressures) if args.pressures else None)
+        pair = _pressure_pair("--pressures", args.pressures) if args.pressures else None
+        return open_loop_controller("hold", pair)
     if args.controller == "step":
         if not args.pressures:
             raise BadInput("--pressures: missing; --controller step needs the pressures after the step, e.g. "
@@ -170,11 +171,11 @@ def _make_controller(args):
             at = to_si(args.step_at, "time")
         except UnitError as exc:
             raise BadInput(f"--step-at: {exc}") from None
-        return StepPressures(_pressure_pair("--pressures", args.pressures), at)
+        return open_loop_controller("step", _pressure_pair("--pressures", args.pressures), at)
     if not args.profile:
         raise BadInput("--profile: missing; --controller replay needs a profile CSV "
                        "(columns: time [s], command_a [kPa], command_b [kPa])")
-    return ReplayProfile(PressureProfile.read_csv(args.profile), source=args.profile)
+    return open_loop_controller("replay", profile=PressureProfile.read_csv(args.profile), source=args.profile)
 
 
 def _print_cautions(setup) -> None:
@@ -716,6 +717,34 @@ def _add_out(p) -> None:
     p.add_argument("--overwrite", action="store_true", help="replace an earlier pamjoint run in --out")
 
 
+def cmd_sweep(args) -> int:
+    """Run tune, compare or run over sampled plant variations, on local processes or a Dask cluster."""
+    from .sweep import SweepError, load_spec, run_sweep, summary_lines
+
+    spec = load_spec(args.spec)
+    if args.resume and not args.out:
+        raise BadInput("--resume: needs --out DIR, the folder of the sweep to continue")
+    out = Path(args.out) if args.resume else _out_dir(args, "sweep")
+    where = f"the Dask scheduler at {args.scheduler}" if args.scheduler else (
+        "this process" if args.workers == 0 else f"{args.workers or 'all'} local worker process(es)")
+    if not args.json:
+        print(f"sweep {spec['source']}: {spec['samples']} samples of {spec['job']['kind']} on {where} into {out}",
+              flush=True)
+    try:
+        result = run_sweep(spec, out, workers=args.workers, scheduler=args.scheduler, resume=args.resume,
+                           progress=None if args.json else sys.stderr)
+    except SweepError as exc:
+        raise BadInput(str(exc)) from None
+    if args.json:
+        return _print_json(result.data)
+    for line in summary_lines(result.data):
+        print(line)
+    print(f"wrote {out}/sweep.json, samples.csv, success_by_key.png, rms_ratio.png, trials_to_strike.png, samples/")
+    print(safety.GENERAL)
+    print(safety.HARDWARE)
+    return 0
+
+
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser of all sub-commands."""
     parser = _Parser(prog="pamjoint", description="Antagonistic McKibben muscle joints: sizing, "
@@ -830,6 +859,19 @@ def build_parser() -> argparse.ArgumentParser:
     _add_out(p)
     p.add_argument("--json", action="store_true", help="print the report as JSON")
     p.set_defaults(func=cmd_plan)
+
+    p = sub.add_parser("sweep", help="run tune, compare or run over sampled plant variations (local processes "
+                       "or a Dask cluster)")
+    p.add_argument("spec", help="sweep spec YAML: base config, keys to vary, samples, job, seed")
+    p.add_argument("--out", help="sweep folder, new or empty (default: a new folder under runs/)")
+    p.add_argument("--overwrite", action="store_true", help="replace an earlier sweep in --out")
+    p.add_argument("--workers", type=int, help="local worker processes (default: the machine's cores; 0: in this "
+                   "process)")
+    p.add_argument("--scheduler", metavar="ADDRESS", help="run on the dask.distributed scheduler at ADDRESS, e.g. "
+                   "tcp://10.0.0.5:8786 (needs the cluster extra)")
+    p.add_argument("--resume", action="store_true", help="continue the sweep in --out, skipping finished samples")
+    p.add_argument("--json", action="store_true", help="print sweep.json")
+    p.set_defaults(func=cmd_sweep)
     return parser
 
 

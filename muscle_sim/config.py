@@ -585,3 +585,40 @@ def strike_task(cfg: Config):
     from .tasks import task_from_config
 
     return task_from_config(cfg.get("task"))
+
+
+# --- single keys, for tools that change one key of a config (sweeps) -----------------------------
+
+def schema_keys(schema: dict | None = None, prefix: str = ""):
+    """``(key path, Key)`` of every key of ``schema`` (default: :data:`SCHEMA`), in its order."""
+    for name, spec in (SCHEMA if schema is None else schema).items():
+        if isinstance(spec, dict):
+            yield from schema_keys(spec, f"{prefix}{name}.")
+        else:
+            yield f"{prefix}{name}", spec
+
+
+def schema_key(dotted: str, where: str | None = None) -> Key:
+    """The declaration of the config key at ``dotted`` (e.g. ``"plant.joint.payload_mass"``).
+
+    A path that names no key (or a section) is a one-line ConfigError naming ``where`` (default:
+    the path itself) with the closest key path."""
+    keys = dict(schema_keys())
+    if dotted in keys:
+        return keys[dotted]
+    close = difflib.get_close_matches(str(dotted), list(keys), n=1)
+    hint = f"; did you mean '{close[0]}'?" if close else "; see configs/flipper.yaml for every key"
+    raise ConfigError(f"{where or dotted}: {str(dotted)!r} is not a config key{hint}")
+
+
+def convert_value(where: str, key: Key, value):
+    """``value`` as written in a config (with its unit) checked against ``key`` and converted to
+    SI, as :func:`load` does for each key; errors are one line naming ``where``."""
+    return _convert(where, key, value)
+
+
+def validate_section(schema: dict, raw, where: str) -> dict:
+    """A mapping checked against a schema of :class:`Key` declarations (unknown keys with a
+    did-you-mean, units, ranges, required keys, defaults), as a config section is; returns the SI
+    values; errors are one line naming the key under ``where``."""
+    return _resolve(schema, raw, where)

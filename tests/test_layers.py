@@ -23,7 +23,8 @@ LAYERS = {
     "controllers": [f"controllers.{p.stem}" for p in sorted((ROOT / "controllers").glob("*.py"))
                     if p.stem != "__init__"],
     "shells": ["muscle_sim.env", "muscle_sim.vector_env"],
-    "face": ["muscle_sim.cli", "muscle_sim.muscle_map", "muscle_sim.joint_view", "muscle_sim.calibration"],
+    "face": ["muscle_sim.cli", "muscle_sim.muscle_map", "muscle_sim.joint_view", "muscle_sim.calibration",
+             "muscle_sim.sweep"],
 }
 ORDER = list(LAYERS)
 LAYER_OF = {module: ORDER.index(layer) for layer, modules in LAYERS.items() for module in modules}
