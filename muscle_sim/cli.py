@@ -578,7 +578,7 @@ def _plan_report(setup, result, out: Path, png) -> None:
 
 def cmd_plan(args) -> int:
     """Plan the strike offline on the prior model."""
-    from controllers.planning import plan
+    from controllers.planning import plan, plan_task
     from .records import save_figure_atomic, write_json_atomic, write_text_atomic
     from .simulation import Setup
 
@@ -602,11 +602,18 @@ def cmd_plan(args) -> int:
     lines += [f"{a:.9g},{math.degrees(q):.9g}" for a, q in zip(t, result.swing)]
     write_text_atomic(out / "reference.csv", "\n".join(lines) + "\n")
     png = save_figure_atomic(_plan_figure(setup, result, t), out / "plan.png")
-    report = {"success": result.success, "status": result.status, "message": result.message,
+    # "success" means converged (optimality test passed, not stopped at the iteration limit)
+    report = {"success": result.success, "converged": result.converged, "status": result.status,
+              "message": result.message, "optimiser_message": result.optimiser_message,
+              "optimality": result.optimality if math.isfinite(result.optimality) else None,
+              "iterations": result.iterations, "iteration_limit": result.max_iterations,
               "misses": result.misses, "objective": result.objective, "objective_value": result.objective_value,
               "strike_angle_deg": math.degrees(result.strike_angle), "strike_speed_rad_s": result.strike_speed,
               "active_limits": result.active_limits, "max_strike_speed_rad_s": result.max_strike_speed,
-              "suggestions": result.suggestions, "profile": str(out / "profile.csv"),
+              "binding_limit": result.binding_limit, "suggestions": result.suggestions,
+              "profile": str(out / "profile.csv"), "reference": str(out / "reference.csv"),
+              "home_pressure_kpa": result.home_pressure / 1e3,
+              "home_pressures_kpa": [p / 1e3 for p in result.home_pressures], "task": plan_task(task),
               "safety": safety.GENERAL + " " + safety.HARDWARE}
     write_json_atomic(out / "plan.json", report)
     _plan_report(setup, result, out, png)
@@ -615,6 +622,8 @@ def cmd_plan(args) -> int:
     print(f"plan of {setup.config.source} on the prior model, minimising {result.objective}: {result.message}")
     print(f"  strike {math.degrees(result.strike_angle):.3f} deg at {task.strike_time * 1e3:g} ms with "
           f"{result.strike_speed:.3f} rad/s (wanted {math.degrees(task.strike_angle):g} deg, {task.strike_speed:g} rad/s)")
+    print(f"  converged: {'yes' if result.converged else 'no'} ({result.optimiser_message}; "
+          f"{result.iterations} of {result.max_iterations} iterations)")
     print(f"  {result.objective}: {result.objective_value:.4g} bar")
     for line in result.active_limits or ["none"]:
         print(f"  active limit: {line}")
