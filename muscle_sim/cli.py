@@ -254,12 +254,25 @@ def cmd_tune(args) -> int:
         out = Path(args.resume)
     else:
         out = _out_dir(args, "tune")
-    start = PressureProfile.read_csv(args.start) if args.start else None
-    if start is not None:
-        start.check_grid(setup.task.dt, setup.task.n_steps, args.start)
+    start, reference = None, None
+    if args.start:
+        from controllers.planning import read_plan
+
+        planned = read_plan(args.start, setup.task)       # a plan folder's profile: track its swing
+        if planned is not None:
+            if abs(planned.home_pressure - setup.task.home_pressure) > 1.0:
+                raise BadInput(f"--start: home_pressure {planned.home_pressure / 1e3:g} kPa of the plan is not "
+                               f"allowed; the config's is {setup.task.home_pressure / 1e3:g} kPa: plan again")
+            start, reference = planned.profile, planned.reference
+        else:
+            start = PressureProfile.read_csv(args.start)
+            start.check_grid(setup.task.dt, setup.task.n_steps, args.start)
     _print_cautions(setup)
     if not args.json:
         print(f"tuning {setup.config.source} with {method} for {trials} trials (seed {args.seed}) into {out}")
+        if reference is not None:
+            print(f"  from the plan in {Path(args.start).parent if Path(args.start).is_file() else args.start}: "
+                  f"learning toward its planned swing")
         print(tables.header_line(tables.METRIC_COLUMNS, tables.TRIAL))
 
     def progress(row):
@@ -269,7 +282,7 @@ def cmd_tune(args) -> int:
 
     try:
         summary = tune(setup, method, trials, args.seed, out, resume=bool(args.resume), start=start,
-                       callback=progress)
+                       callback=progress, reference=reference)
     except ValueError as exc:
         raise BadInput(str(exc)) from None
     if args.json:
