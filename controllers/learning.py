@@ -244,11 +244,19 @@ def penalised_box_qp(A, b, low, high, M, h, rho: float, max_iterations: int = 10
 
 class StrikeObjective:
     """Weighted strike error of a trial: ``J = 1/2 sum w_k e_k^2 + 1/2 w_r e_r^2`` with the angle
-    error at every sample (emphasised in the strike window) and the strike-rate error."""
+    error at every sample (emphasised in the strike window) and the strike-rate error.
 
-    def __init__(self, task, settings: LearningSettings):
+    ``reference`` (N+1,) [rad], when given, is the swing to track instead of the rollout's own
+    reference column (the task's): a planned swing, so tuning from a plan learns toward it."""
+
+    def __init__(self, task, settings: LearningSettings, reference=None):
         self.task = task
         n = task.n_steps + 1
+        if reference is not None:
+            reference = np.asarray(reference, dtype=float)
+            if reference.shape != (n,) or not np.all(np.isfinite(reference)):
+                raise ValueError(f"reference: shape {reference.shape} is not allowed; must be {n} finite angles")
+        self.reference = reference
         t = np.arange(n) * task.dt
         window = np.abs(t - task.strike_time) <= settings.strike_window + 1e-12
         self.w_angle = (1.0 + settings.strike_weight * window) / n
@@ -258,7 +266,9 @@ class StrikeObjective:
 
     def errors(self, rollout):
         """``(e_angle (N+1,), e_rate)``: reference minus measured."""
-        e = np.asarray(rollout.reference) - np.asarray(rollout.measured[:, 0])
+        measured = np.asarray(rollout.measured[:, 0])
+        ref = np.asarray(rollout.reference) if self.reference is None else self.reference[: measured.size]
+        e = ref - measured
         k = self.task.strike_index
         e_rate = self.task.strike_speed - float(rollout.measured[k, 1]) if k < len(e) else 0.0
         return e, e_rate

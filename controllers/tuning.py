@@ -14,27 +14,34 @@ from pathlib import Path
 import numpy as np
 
 from muscle_sim import safety
-from muscle_sim.records import read_log, write_json_atomic
+from muscle_sim.records import read_log, write_json_atomic, write_text_atomic
 from muscle_sim.report import config_text, write_report
 from muscle_sim.tables import METRIC_COLUMNS, TRIAL, Column, cells
 from muscle_sim.runs import run_trial
 from muscle_sim.threads import single_blas_thread
 
-from .learning import GradientLearner, LearnerState, LearningSettings
+from .learning import GradientLearner, LearnerState, LearningSettings, StrikeObjective
 from .modelfree import SPSALearner
 from .simple import ReplayProfile
 
 METHODS = ("norm-optimal", "gradient", "spsa")
+#: File of a tune folder holding the planned swing the learner tracks (when tuned from a plan).
+PLANNED_REFERENCE = "planned_reference.csv"
 METRIC_KEYS = tuple(c.key for c in METRIC_COLUMNS)
 
 
-def make_learner(setup, method: str, trials: int, seed: int):
-    """The learner of ``method`` for ``setup`` with settings from the config's learning section."""
+def make_learner(setup, method: str, trials: int, seed: int, reference=None):
+    """The learner of ``method`` for ``setup`` with settings from the config's learning section;
+    ``reference`` (N+1,) [rad] replaces the task's reference swing (a planned one)."""
     settings = LearningSettings.from_config(setup.config)
     settings = LearningSettings(**{**asdict(settings), "method": method})
     if method == "spsa":
-        return SPSALearner(setup, settings, budget_trials=trials, seed=seed)
-    return GradientLearner(setup, settings)
+        learner = SPSALearner(setup, settings, budget_trials=trials, seed=seed)
+    else:
+        learner = GradientLearner(setup, settings)
+    if reference is not None:
+        learner.objective = StrikeObjective(setup.task, settings, reference)
+    return learner
 
 
 def start_profile(setup):
@@ -62,8 +69,12 @@ def final_theta(learner, state: LearnerState):
 
 
 @single_blas_thread
-def tune(setup, method: str, trials: int, seed: int, out, resume: bool = False, start=None, callback=None) -> dict:
+def tune(setup, method: str, trials: int, seed: int, out, resume: bool = False, start=None, callback=None,
+         reference=None) -> dict:
     """Run ``trials`` learning trials (drift included); returns the summary written to ``out``.
+
+    ``reference`` (N+1,) [rad]: the swing the learner tracks instead of the task's (a plan's,
+    with ``start`` its profile); saved as ``planned_reference.csv`` and used again on resume.
 
     ``callback(row)`` is called after every trial with its summary row; returning True stops the
     run cleanly after that trial (status 1).
@@ -71,7 +82,10 @@ def tune(setup, method: str, trials: int, seed: int, out, resume: bool = False, 
     if method not in METHODS:
         raise ValueError(f"method: {method!r} is not allowed; must be one of {', '.join(METHODS)}")
     out = Path(out)
-    learner = make_learner(setup, method, trials, seed)
+    ref_path = out / PLANNED_REFERENCE
+    if resume and reference is None and ref_path.exists():
+        reference = np.radians(np.loadtxt(ref_path, delimiter=",", skiprows=2, ndmin=2)[:, 1])
+    learner = make_learner(setup, method, trials, seed, reference)
     rows = []
     fresh = not resume
     if resume and not (out / "summary.json").exists() and (out / "tune_options.json").exists():
@@ -95,6 +109,11 @@ def tune(setup, method: str, trials: int, seed: int, out, resume: bool = False, 
             state = LearnerState.from_dict(json.loads(state_path.read_text()))
     if fresh:
         profile0 = start if start is not None else start_profile(setup)
+        if reference is not None:
+            t = np.arange(setup.task.n_steps + 1) * setup.task.dt
+            lines = ["# swing the learner tracks (planned on the prior)", "time [s],reference [deg]"]
+            lines += [f"{a:.9g},{np.degrees(q):.9g}" for a, q in zip(t, reference)]
+            write_text_atomic(ref_path, "\n".join(lines) + "\n")
         state = learner.initial_state(profile0)
         p, s, _ = _paths(out, 0)
         learner.profile(state.theta, trial=0, method=method).write_csv(p)

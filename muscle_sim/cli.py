@@ -275,6 +275,19 @@ def cmd_tune(args) -> int:
     method = args.method or saved.get("method") or setup.config.get("learning.method")
     args.seed = args.seed if args.seed is not None else saved.get("seed", 0)
     args.start = args.start or saved.get("start")
+    start, reference = None, None
+    if args.start:
+        from controllers.planning import read_plan
+
+        planned = read_plan(args.start, setup.task)       # a plan folder's profile: track its swing
+        if planned is not None:
+            if abs(planned.home_pressure - setup.task.home_pressure) > 1.0:
+                raise BadInput(f"--start: home_pressure {planned.home_pressure / 1e3:g} kPa of the plan is not "
+                               f"allowed; the config's is {setup.task.home_pressure / 1e3:g} kPa: plan again")
+            start, reference = planned.profile, planned.reference
+        else:
+            start = PressureProfile.read_csv(args.start)
+            start.check_grid(setup.task.dt, setup.task.n_steps, args.start)
     if args.resume:
         out = Path(args.resume)
     else:
@@ -284,12 +297,12 @@ def cmd_tune(args) -> int:
         write_bytes_atomic(out / "config.yaml", Path(config).read_bytes())
         write_json_atomic(out / "tune_options.json", {"config": "config.yaml", "method": method, "trials": trials,
                                                       "seed": args.seed, "start": args.start})
-    start = PressureProfile.read_csv(args.start) if args.start else None
-    if start is not None:
-        start.check_grid(setup.task.dt, setup.task.n_steps, args.start)
     _print_cautions(setup)
     if not args.json:
         print(f"tuning {setup.config.source} with {method} for {trials} trials (seed {args.seed}) into {out}")
+        if reference is not None:
+            print(f"  from the plan in {Path(args.start).parent if Path(args.start).is_file() else args.start}: "
+                  f"learning toward its planned swing")
         print(tables.header_line(tables.METRIC_COLUMNS, tables.TRIAL))
 
     def progress(row):
@@ -299,7 +312,7 @@ def cmd_tune(args) -> int:
 
     try:
         summary = tune(setup, method, trials, args.seed, out, resume=bool(args.resume), start=start,
-                       callback=progress)
+                       callback=progress, reference=reference)
     except ValueError as exc:
         raise BadInput(str(exc)) from None
     if args.json:
@@ -653,7 +666,7 @@ def _plan_report(setup, result, out: Path, png) -> None:
 
 def cmd_plan(args) -> int:
     """Plan the strike offline on the prior model."""
-    from controllers.planning import plan
+    from controllers.planning import plan, plan_task
     from .records import save_figure_atomic, write_json_atomic, write_text_atomic
     from .simulation import Setup
 
@@ -677,11 +690,18 @@ def cmd_plan(args) -> int:
     lines += [f"{a:.9g},{math.degrees(q):.9g}" for a, q in zip(t, result.swing)]
     write_text_atomic(out / "reference.csv", "\n".join(lines) + "\n")
     png = save_figure_atomic(_plan_figure(setup, result, t), out / "plan.png")
-    report = {"success": result.success, "status": result.status, "message": result.message,
+    # "success" means converged (optimality test passed, not stopped at the iteration limit)
+    report = {"success": result.success, "converged": result.converged, "status": result.status,
+              "message": result.message, "optimiser_message": result.optimiser_message,
+              "optimality": result.optimality if math.isfinite(result.optimality) else None,
+              "iterations": result.iterations, "iteration_limit": result.max_iterations,
               "misses": result.misses, "objective": result.objective, "objective_value": result.objective_value,
               "strike_angle_deg": math.degrees(result.strike_angle), "strike_speed_rad_s": result.strike_speed,
               "active_limits": result.active_limits, "max_strike_speed_rad_s": result.max_strike_speed,
-              "suggestions": result.suggestions, "profile": str(out / "profile.csv"),
+              "binding_limit": result.binding_limit, "suggestions": result.suggestions,
+              "profile": str(out / "profile.csv"), "reference": str(out / "reference.csv"),
+              "home_pressure_kpa": result.home_pressure / 1e3,
+              "home_pressures_kpa": [p / 1e3 for p in result.home_pressures], "task": plan_task(task),
               "safety": safety.GENERAL + " " + safety.HARDWARE}
     write_json_atomic(out / "plan.json", report)
     _plan_report(setup, result, out, png)
@@ -690,6 +710,8 @@ def cmd_plan(args) -> int:
     print(f"plan of {setup.config.source} on the prior model, minimising {result.objective}: {result.message}")
     print(f"  strike {math.degrees(result.strike_angle):.3f} deg at {task.strike_time * 1e3:g} ms with "
           f"{result.strike_speed:.3f} rad/s (wanted {math.degrees(task.strike_angle):g} deg, {task.strike_speed:g} rad/s)")
+    print(f"  converged: {'yes' if result.converged else 'no'} ({result.optimiser_message}; "
+          f"{result.iterations} of {result.max_iterations} iterations)")
     print(f"  {result.objective}: {result.objective_value:.4g} bar")
     for line in result.active_limits or ["none"]:
         print(f"  active limit: {line}")

@@ -111,3 +111,44 @@ def test_compare_writes_the_table_of_all_controllers(tmp_path, capsys):
     assert gains["proportional_bar_per_deg"] > 0 and gains["loop_delay_ms"] > 0
     line = "Feedback gains" + " " + f"{gains['proportional_bar_per_deg']:.3g} bar/deg"
     assert line in capsys.readouterr().out and line in (out / "comparison.md").read_text()
+
+
+def test_tune_from_a_plan_tracks_its_swing_from_the_plant_home(tmp_path, capsys):
+    # reference: the plan folder's reference.csv (what the learner must track, copied verbatim)
+    # and the home angle of configs/flipper.yaml (-30 deg): trial 0 opens at rest there, the
+    # first command being the plan's first row, the home pressures (simulation.home_pressures)
+    import numpy as np
+
+    from muscle_sim.simulation import Setup, home_pressures
+
+    plan_dir, out = tmp_path / "p", tmp_path / "t"
+    assert cli.main(["plan", str(DEMO), "--iterations", "3", "--out", str(plan_dir)]) == 0
+    assert cli.main(["tune", str(DEMO), "--start", str(plan_dir / "profile.csv"), "--trials", "1",
+                     "--out", str(out)]) == 0
+    assert "learning toward its planned swing" in capsys.readouterr().out
+    planned = np.loadtxt(plan_dir / "reference.csv", delimiter=",", skiprows=2)
+    tracked = np.loadtxt(out / "planned_reference.csv", delimiter=",", skiprows=2)
+    np.testing.assert_allclose(tracked, planned, atol=1e-6)
+    setup = Setup.from_config(DEMO)
+    log = np.loadtxt(out / "rollouts" / "trial-0000.csv", delimiter=",", skiprows=2)
+    opening = log[:, 0] < 0.02
+    # no opening transient: within 0.2 deg of home over the first 20 ms (sensor noise ~0.05 deg;
+    # a plan holding other pressures than the plant's home swung the joint 20 deg there)
+    assert opening.sum() >= 5 and np.max(np.abs(log[opening, 1] + 30.0)) < 0.2
+    np.testing.assert_allclose(log[0, 5:7], np.array(home_pressures(setup.prior, setup.task)) / 1e3, rtol=1e-6)
+
+
+def test_tune_from_a_plan_of_another_task_exits_2(tmp_path, capsys):
+    import yaml
+
+    from conftest import demo_config
+
+    plan_dir = tmp_path / "p"
+    assert cli.main(["plan", str(DEMO), "--iterations", "2", "--out", str(plan_dir)]) == 0
+    other = tmp_path / "other.yaml"
+    other.write_text(yaml.safe_dump(demo_config(task__strike_speed="11 rad/s")))
+    capsys.readouterr()
+    assert cli.main(["tune", str(other), "--start", str(plan_dir / "profile.csv"), "--trials", "1",
+                     "--out", str(tmp_path / "t")]) == 2
+    err = capsys.readouterr().err
+    assert "task.strike_speed" in err and len(err.strip().splitlines()) == 1

@@ -272,3 +272,24 @@ def test_update_on_a_trial_the_prior_cannot_linearise_keeps_the_profile():
     new_profile, new_state, result = learner.update(bad, profile, state)
     assert (result.success, result.accepted, result.status) == (False, False, 4)
     assert new_state.theta == state.theta and np.all(np.isfinite(new_profile.commands))
+
+
+def test_the_strike_objective_tracks_a_given_reference_instead_of_the_rollouts():
+    # reference: e = reference - measured (derived from the objective's definition); a planned
+    # swing offset 0.1 rad from the rollout's own reference column changes every angle error by 0.1
+    from controllers.learning import LearningSettings, StrikeObjective
+
+    setup = Setup.from_config(DEMO)
+    task = setup.task
+    n = task.n_steps + 1
+    t = np.arange(n) * task.dt
+    measured = np.zeros((n, 4))
+    own = np.full(n, 0.2)
+    roll = Rollout(t, measured, np.zeros((n, 2)), own)
+    settings = LearningSettings.from_config(setup.config)
+    e_task, _ = StrikeObjective(task, settings).errors(roll)
+    e_plan, _ = StrikeObjective(task, settings, reference=own + 0.1).errors(roll)
+    np.testing.assert_allclose(e_task, 0.2)
+    np.testing.assert_allclose(e_plan, 0.3)
+    with pytest.raises(ValueError, match="reference"):
+        StrikeObjective(task, settings, reference=np.zeros(n - 1))

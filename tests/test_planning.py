@@ -7,7 +7,7 @@ import numpy as np
 import pytest
 import yaml
 
-from controllers.planning import (ANGLE_TOLERANCE, PRESSURE_TOLERANCE, STRIKE_ANGLE_TOLERANCE,
+from controllers.planning import (ANGLE_TOLERANCE, OPTIMALITY_TOLERANCE, PRESSURE_TOLERANCE, STRIKE_ANGLE_TOLERANCE,
                                   STRIKE_SPEED_TOLERANCE, plan)
 from muscle_sim import cli
 from muscle_sim.integrate import simulate
@@ -19,9 +19,11 @@ from conftest import DEMO, check_report
 
 def test_plan_meets_the_strike_within_the_limits(tmp_path):
     setup = Setup.from_config(DEMO)
-    res = plan(setup, "peak-pressure", max_pressure_rate=150e5, max_iterations=40)
-    # reference: the task's strike numbers; tolerances 0.05 deg and 0.5 % (constraint tolerance of SLSQP)
-    assert res.success and res.status in (0, 1) and not res.misses
+    res = plan(setup, "peak-pressure", max_pressure_rate=150e5)
+    # reference: the task's strike numbers; tolerances 0.05 deg and 0.5 % (constraint tolerance of SLSQP);
+    # success means converged: first-order residual within the stated tolerance, not an iteration limit
+    assert res.success and res.status == 0 and res.converged and not res.misses
+    assert res.optimality <= OPTIMALITY_TOLERANCE and res.iterations < 150
     assert math.degrees(res.strike_angle) == pytest.approx(math.degrees(setup.task.strike_angle), abs=0.05)
     assert res.strike_speed == pytest.approx(setup.task.strike_speed, rel=5e-3)
     c = res.profile.commands
@@ -38,10 +40,17 @@ def test_an_impossible_strike_is_reported_with_its_shortfall(tmp_path, capsys):
     raw["task"]["strike_speed"] = "40 rad/s"
     cfg = tmp_path / "fast.yaml"
     cfg.write_text(yaml.safe_dump(raw))
-    assert cli.main(["plan", str(cfg), "--iterations", "25", "--out", str(tmp_path / "p"), "--json"]) == 0
+    assert cli.main(["plan", str(cfg), "--out", str(tmp_path / "p"), "--json"]) == 0
     report = json.loads(capsys.readouterr().out)
-    assert report["success"] is False and report["status"] == 2 and report["misses"]
-    assert 0 < report["max_strike_speed_rad_s"] < 40.0
+    # with 25 iterations the fallback may not be shown fastest (status 3), but it is verified
+    assert report["success"] is False and report["status"] in (2, 3) and report["misses"]
+    # never a strike at the wrong angle: a reported fallback was simulated on the prior and
+    # reaches the strike angle (planner tolerance, 1e-3 rad); without one no speed is claimed
+    if report["max_strike_speed_rad_s"] is not None:
+        assert 0 < report["max_strike_speed_rad_s"] < 40.0
+        assert abs(math.radians(report["strike_angle_deg"]) - math.radians(20.0)) <= STRIKE_ANGLE_TOLERANCE
+    else:
+        assert "no profile reaching the strike angle" in report["message"]
     assert report["suggestions"] and "reduced pressure" in report["safety"]
     assert (tmp_path / "p" / "profile.csv").exists() and (tmp_path / "p" / "plan.png").exists()
     assert "out of reach" in check_report(tmp_path / "p")
@@ -82,10 +91,12 @@ def test_plan_success_means_the_prior_meets_the_strike_within_the_limits():
     raw["task"]["strike_speed"] = "40 rad/s"
     outcomes = []
     for setup in (Setup.from_config(DEMO), Setup.from_config(raw)):
-        res = plan(setup, "peak-pressure", max_iterations=5)
+        res = plan(setup, "peak-pressure")
         truth = _meets_strike_within_limits(setup, res.profile)
-        assert res.success == truth
-        assert (res.status in (0, 1)) == res.success and bool(res.misses) == (not res.success)
+        # success (converged and met) implies the re-simulated profile meets everything; an
+        # out-of-reach strike is never reported met
+        assert (not res.success) or truth
+        assert res.success == (res.status == 0) and bool(res.misses) == (res.status >= 2)
         outcomes.append(res.success)
     assert outcomes == [True, False]
 
