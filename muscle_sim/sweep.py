@@ -46,6 +46,7 @@ from . import config as _config
 from . import safety
 from .errors import ConfigError
 from .records import save_figure_atomic, write_json_atomic, write_text_atomic
+from .report import config_text, write_report
 from .threads import single_blas_thread
 from .units import UNITS, to_si, UnitError
 
@@ -713,9 +714,17 @@ def write_outputs(out, spec: dict) -> dict:
             "definitions": DEFINITIONS, "samples": samples,
             "files": {"table": "samples.csv", **figures, "records": "samples/sample-NNNNNN.json"},
             "safety": safety.GENERAL + " " + safety.HARDWARE}
-    write_text_atomic(out / "samples.csv", samples_csv(samples, columns))
+    table = samples_csv(samples, columns)
+    write_text_atomic(out / "samples.csv", table)
     _figures(out, samples, columns, figures)
     write_json_atomic(out / "sweep.json", data)
+    # the sweep's page: its table, the base config, the figures and the cautions
+    rows = [line.split(",") for line in table.strip().splitlines() if not line.startswith("#")]
+    failed = data["summary"].get("failed")
+    write_report(out, f"sweep {spec['name']}", rows, config_text(_config.load(spec["base"])),
+                 [safety.HARDWARE], "look into the failed samples first" if failed else
+                 "check the plants nearest the edge of success on the rig, at reduced pressure first",
+                 [out / name for name in figures.values()], notes=summary_lines(data))
     return json.loads((out / "sweep.json").read_text(encoding="utf-8"))
 
 

@@ -365,3 +365,12 @@ def test_table_of_a_failed_sample_leaves_its_metrics_empty():
     # the comma inside the message is quoted, so the row keeps its cells
     assert rows[1][-1].endswith("must be >= 0 kg") and len(rows[1]) == len(rows[0])
 
+
+
+def test_the_sweep_folder_holds_its_report(reference):
+    # the run-folder contract of every command: a self-contained page with the table, the base
+    # config, the three figures and the cautions
+    from conftest import check_report
+    _, out = reference
+    page = check_report(out, figures=3)
+    assert "samples done" in page
