@@ -52,7 +52,7 @@ def measure(spec: dict, workers: int) -> dict:
 
 def main(argv=None) -> dict:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("--samples", type=int, default=8)
+    parser.add_argument("--samples", type=int, default=12)
     parser.add_argument("--trials", type=int, default=3)
     args = parser.parse_args(argv)
     spec = _spec(args.samples, args.trials)
