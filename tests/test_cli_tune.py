@@ -33,19 +33,22 @@ def test_tune_writes_every_trial(tmp_path, capsys):
     assert summary["verdict"]["next_action"] in page and "reduced pressure" in page
 
 
+def _kill_when(command, ready, poll: float) -> None:
+    """Start ``command`` and kill -9 it as soon as ``ready()`` holds (or after 60 s)."""
+    proc = subprocess.Popen(command, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    deadline = time.time() + 60
+    while time.time() < deadline and not ready():
+        time.sleep(poll)
+    os.kill(proc.pid, signal.SIGKILL)
+    proc.wait()
+
+
 def test_kill_9_then_resume_matches_an_uninterrupted_run(tmp_path):
     full, cut = tmp_path / "full", tmp_path / "cut"
     args = [sys.executable, "-m", "muscle_sim.cli", "tune", str(DEMO), "--trials", "8", "--seed", "3"]
     subprocess.run(args + ["--out", str(full)], check=True, capture_output=True)
-    proc = subprocess.Popen(args + ["--out", str(cut)], stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
-    deadline = time.time() + 60
-    while time.time() < deadline:
-        summary = cut / "summary.json"
-        if summary.exists() and len(json.loads(summary.read_text())["trials"]) >= 3:
-            break
-        time.sleep(0.01)
-    os.kill(proc.pid, signal.SIGKILL)
-    proc.wait()
+    _kill_when(args + ["--out", str(cut)], lambda: (cut / "summary.json").exists()
+               and len(json.loads((cut / "summary.json").read_text())["trials"]) >= 3, 0.01)
     done = len(json.loads((cut / "summary.json").read_text())["trials"])
     assert 3 <= done
     assert not list(cut.rglob("*.part")) or all(p.name.startswith(".") for p in cut.rglob("*.part"))
@@ -62,12 +65,7 @@ def test_a_run_killed_in_its_first_trial_resumes_from_its_folder_alone(tmp_path)
     full, cut = tmp_path / "full", tmp_path / "cut"
     args = [sys.executable, "-m", "muscle_sim.cli", "tune", str(DEMO), "--trials", "3", "--seed", "5"]
     subprocess.run(args + ["--out", str(full)], check=True, capture_output=True)
-    proc = subprocess.Popen(args + ["--out", str(cut)], stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
-    deadline = time.time() + 60
-    while time.time() < deadline and not (cut / "summary.json").exists():
-        time.sleep(0.002)
-    os.kill(proc.pid, signal.SIGKILL)
-    proc.wait()
+    _kill_when(args + ["--out", str(cut)], lambda: (cut / "summary.json").exists(), 0.002)
     assert len(json.loads((cut / "summary.json").read_text())["trials"]) < 3
     (cut / "profiles" / ".state-0001.json.abc.part").write_text("cut short")
     subprocess.run([sys.executable, "-m", "muscle_sim.cli", "tune", "--resume", str(cut)], check=True,
