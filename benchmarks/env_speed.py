@@ -26,10 +26,10 @@ sys.path.insert(0, str(ROOT))
 import gymnasium as gym  # noqa: E402
 import numpy as np  # noqa: E402
 
-import muscle_sim  # noqa: E402,F401  (registers pamjoint/FlipperStrike-v0)
+import muscle_sim  # noqa: E402,F401  (registers pamjoint/FlipperStrike-v1)
 from muscle_sim.records import write_json_atomic  # noqa: E402
 
-ENV_ID = "pamjoint/FlipperStrike-v0"
+ENV_ID = "pamjoint/FlipperStrike-v1"
 REFERENCE_ID = "Pendulum-v1"
 OUT = ROOT / "benchmarks" / "results" / "env_speed.json"
 ACTION = (-0.3, -0.1)            # fixed action of the single and batched runs
@@ -116,8 +116,8 @@ def vector_env_rates(num_envs: int):
 
 
 _FIRST_STEP = ("import time; t = time.perf_counter(); import gymnasium as gym, muscle_sim; "
-               "env = gym.make('pamjoint/FlipperStrike-v0'); env.reset(seed=0); env.step(env.action_space.sample()); "
-               "v = gym.make_vec('pamjoint/FlipperStrike-v0', num_envs=4, vectorization_mode='vector_entry_point'); "
+               "env = gym.make('pamjoint/FlipperStrike-v1'); env.reset(seed=0); env.step(env.action_space.sample()); "
+               "v = gym.make_vec('pamjoint/FlipperStrike-v1', num_envs=4, vectorization_mode='vector_entry_point'); "
                "v.reset(seed=0); v.step(v.action_space.sample()); print(time.perf_counter() - t)")
 
 

@@ -1,12 +1,12 @@
 """pamjoint's physics and environment package: muscle, pneumatics, joint, plant, tasks, envs.
 
-Importing it registers the Gymnasium id ``pamjoint/FlipperStrike-v0`` (scalar env and native
+Importing it registers the Gymnasium id ``pamjoint/FlipperStrike-v1`` (scalar env and native
 vector env).
 """
 
 __version__ = "0.1.0"
 
-ENV_ID = "pamjoint/FlipperStrike-v0"
+ENV_ID = "pamjoint/FlipperStrike-v1"
 
 
 def _register() -> None:

@@ -1,6 +1,7 @@
 """Slow drift of plant parameters from one trial to the next (wear, supply sag), seeded."""
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, replace
 
 import numpy as np
@@ -8,9 +9,14 @@ import numpy as np
 from .params import PlantParams, _validate
 
 
+#: Friction grows at most this many times its configured value, however many trials pass.
+MAX_FRICTION_GROWTH = 1e3
+
+
 @dataclass(frozen=True)
 class DriftParams:
-    """Drift per trial: friction grows by ``friction_growth`` (relative, compounding), the supply
+    """Drift per trial: friction grows by ``friction_growth`` (relative, compounding, at most
+    :data:`MAX_FRICTION_GROWTH`-fold), the supply
     drops by ``supply_sag`` [Pa] down to ``supply_floor`` [Pa], both with a random relative
     ``spread`` drawn per trial."""
 
@@ -34,7 +40,11 @@ def drifted(params: PlantParams, drift: DriftParams, trial: int, rng: np.random.
     if not drift.active or trial == 0:
         return params
     jitter = rng.standard_normal(2) * drift.spread if (drift.spread and rng is not None) else np.zeros(2)
-    friction = (1.0 + drift.friction_growth) ** trial * (1.0 + jitter[0])
+    try:
+        growth = (1.0 + drift.friction_growth) ** trial
+    except OverflowError:           # a trial index far beyond any rig's life
+        growth = math.inf
+    friction = min(growth, MAX_FRICTION_GROWTH) * (1.0 + jitter[0])
     supply0 = params.pneumatics.supply_pressure
     supply = max(supply0 - drift.supply_sag * trial, min(drift.supply_floor, supply0)) * (1.0 + jitter[1])
     supply = min(supply, supply0)

@@ -1,82 +1,17 @@
-"""Gymnasium environment ``pamjoint/FlipperStrike-v0``: one strike trial per episode (thin shell)."""
+"""Gymnasium environment ``pamjoint/FlipperStrike-v1``: one strike trial per episode, a thin
+shell over the trial core (:class:`muscle_sim.trial.TrialBatch` with one member)."""
 from __future__ import annotations
-
-import math
 
 import gymnasium as gym
 import numpy as np
 from gymnasium import spaces
 
-from .compiled import law
 from .config import shipped_config
-from .errors import SimulationDiverged
-from .simulation import Setup, StrikeTrial
-from .tasks import FAULT_PENALTY, reference, reward_at, strike_metrics
+from .simulation import Setup
+from .trial import (MAX_TRIAL, TrialBatch, actions_to_commands, check_trial,
+                    observation_bounds, observations_into)
 
 DEMO_CONFIG = shipped_config("flipper.yaml")
-RATE_BOUND = 60.0  # rad/s, observation bound of the angular rate
-
-
-def observation_bounds(setup: Setup):
-    """Lower and upper observation bounds (float32) of the strike environments."""
-    top = 1.2 * max(setup.plant.pneumatics.supply_pressure, setup.rated_pressure)
-    span = setup.task.trial_length
-    low = np.array([-math.pi, -RATE_BOUND, 0.0, 0.0, setup.task.strike_time - span], dtype=np.float32)
-    high = np.array([math.pi, RATE_BOUND, top, top, setup.task.strike_time], dtype=np.float32)
-    return low, high
-
-
-@law
-def observation_into(readings, time_to_strike, low, high, out):
-    """Observation ``[angle, rate, p_a, p_b, time to strike]`` clipped to the space's bounds
-    into ``out`` (float32)."""
-    for c in range(5):
-        v = readings[c] if c < 4 else time_to_strike
-        out[c] = min(max(v, low[c]), high[c])
-
-
-@law
-def observations_into(readings, steps, strike_time, dt, low, high, out):
-    """:func:`observation_into` for each member (readings (B, 4), steps (B,)) into ``out`` (B, 5)."""
-    for i in range(readings.shape[0]):
-        observation_into(readings[i], strike_time - steps[i] * dt, low, high, out[i])
-
-
-@law
-def commands_into(actions, full_scale, clipped_count, out):
-    """Actions in [-1, 1] (clipped, clips counted per member) onto 0 .. ``full_scale`` [Pa]."""
-    for i in range(actions.shape[0]):
-        for c in range(2):
-            a = actions[i, c]
-            v = min(max(a, -1.0), 1.0)
-            if v != a:
-                clipped_count[i] += 1
-            out[i, c] = (v + 1.0) * (0.5 * full_scale)
-
-
-def check_action(action, shape_tail=(2,)):
-    """Validate an action array: finite numbers of the right shape (one-line ValueError)."""
-    a = np.asarray(action, dtype=float)
-    if a.shape[-1:] != shape_tail:
-        raise ValueError(f"action: shape {a.shape} is not allowed; must end in {shape_tail} "
-                         f"(pressure commands of muscles A and B in [-1, 1])")
-    if not np.all(np.isfinite(a)):
-        raise ValueError(f"action: {np.array2string(a, threshold=6)} is not allowed; must be finite numbers in "
-                         f"[-1, 1] (values outside are clipped, NaN and inf are refused)")
-    return a
-
-
-def _action_pair(action) -> tuple[float, float]:
-    """Two Python floats from an action, validated like :func:`check_action` (fast path)."""
-    try:
-        a0, a1 = action
-        a0, a1 = float(a0), float(a1)
-    except (TypeError, ValueError):
-        check_action(action)
-        raise
-    if not (math.isfinite(a0) and math.isfinite(a1)):
-        check_action(action)
-    return a0, a1
 
 
 class FlipperStrikeEnv(gym.Env):
@@ -84,8 +19,9 @@ class FlipperStrikeEnv(gym.Env):
     instant, angle and speed, then swing home and settle (the sorting-line flipper demo).
 
     The simulated plant (ISO 6358 valves, polytropic chambers, end effects, braid friction,
-    delays, payload, sensor noise) comes from ``config`` (a YAML path or a mapping; default the
-    shipped ``configs/flipper.yaml``). One episode is one trial of ``task.trial_length``.
+    delays, payload, sensor noise, drift) comes from ``config`` (a YAML path or a mapping;
+    default the shipped ``configs/flipper.yaml``). One episode is one trial of
+    ``task.trial_length``.
 
     ## Action space: ``Box(-1, 1, (2,), float32)``
 
@@ -94,17 +30,22 @@ class FlipperStrikeEnv(gym.Env):
     | 0 | pressure command, muscle A (pulls towards +angle) | -1 | 1 | 0 .. rated pressure, linear |
     | 1 | pressure command, muscle B (pulls towards -angle) | -1 | 1 | 0 .. rated pressure, linear |
 
-    Out-of-range actions are clipped (counted in ``info["clipped_actions"]``); NaN or inf raise.
+    Out-of-range actions are clipped (counted in ``info["clipped_actions"]``); anything that is
+    not two real finite numbers (NaN, inf, complex, objects, another shape) raises ValueError.
 
-    ## Observation space: ``Box(low, high, (5,), float32)`` (sensor readings, SI units)
+    ## Observation space: ``Box(low, high, (6,), float32)`` (scaled for learning agents)
 
-    | index | meaning | min | max | unit |
+    | index | meaning | min | max | scale |
     |---|---|---|---|---|
     | 0 | joint angle (encoder) | -pi | pi | rad |
-    | 1 | joint rate | -60 | 60 | rad/s |
-    | 2 | pressure in muscle A (gauge) | 0 | 1.2 x max(supply, rated) | Pa |
-    | 3 | pressure in muscle B (gauge) | 0 | 1.2 x max(supply, rated) | Pa |
-    | 4 | time to the strike instant | strike_time - trial_length | strike_time | s |
+    | 1 | joint rate | -6 | 6 | per 10 rad/s (bound 60 rad/s) |
+    | 2 | pressure in muscle A (gauge) | 0 | 1.2 x max(supply, rated) / rated | per rated pressure |
+    | 3 | pressure in muscle B (gauge) | 0 | 1.2 x max(supply, rated) / rated | per rated pressure |
+    | 4 | time to the strike instant | (strike_time - trial_length) / trial_length | strike_time / trial_length | per trial length |
+    | 5 | reference angle of the planned swing at this sample | -pi | pi | rad |
+
+    Values are clipped to the bounds. The physical readings, in SI (rad, rad/s, Pa, Pa), are in
+    ``info["readings"]`` at every step.
 
     ## Reward
     Minus the squared tracking error of the planned swing in deg^2, averaged over the trial, and
@@ -113,17 +54,24 @@ class FlipperStrikeEnv(gym.Env):
 
     ## Start state
     At rest at the home angle, both muscles at the pressures that hold it with the configured
-    co-contraction. With drift configured, each reset starts the next trial of the drifted plant;
-    ``reset(seed=s)`` starts a new seeded sequence at trial 0, ``options={"trial": k}`` sets the
-    trial number.
+    co-contraction. The trial index is part of an episode's identity: with drift configured,
+    trial k runs the plant as it has drifted after k trials. ``reset(seed=s)`` starts trial 0,
+    ``reset(seed=s, options={"trial": k})`` trial k (0 .. 1,000,000), so either reproduces an
+    episode exactly; a reset without either goes on to the next trial.
 
     ## Episode end
-    ``truncated`` after ``task.trial_length``; ``terminated`` on a hard fault: the paddle slams
-    deeper than ``task.fault_depth`` into an end stop, or the simulation diverges.
-    ``info["metrics"]`` holds the trial metrics at the end (rms_error_deg,
-    strike_angle_error_deg, strike_speed_error_pct, peak_pressure_kpa, settle_time_s).
+    ``truncated`` after ``task.trial_length`` or at a time limit given to ``gym.make(...,
+    max_episode_steps=N)``; ``terminated`` on a hard fault: the paddle slams deeper than
+    ``task.fault_depth`` into an end stop, or the simulation diverges (``info["fault"]`` says
+    which). ``info["metrics"]`` holds the trial's metrics so far at every step, so also at the
+    end whatever ends it, a wrapper's time limit included (rms_error_deg, strike_angle_error_deg,
+    strike_speed_error_pct, peak_pressure_kpa, settle_time_s, settled, fault); settling is judged
+    only once the log reaches ``task.settle_time``, and a trial that ends in a fault is never
+    settled.
 
     ## Version history
+    - v1: observations scaled (rate, pressures, time) and the reference angle added; readings
+      in ``info``; drift and seeding shared with the vector env; metrics at a time limit.
     - v0: first release.
     """
 
@@ -138,71 +86,65 @@ class FlipperStrikeEnv(gym.Env):
         low, high = observation_bounds(self.setup)
         self.observation_space = spaces.Box(low, high, dtype=np.float32)
         self._low, self._high = low.astype(float), high.astype(float)
-        self._half_range = 0.5 * self.setup.rated_pressure
-        self.trial = StrikeTrial(self.setup)
+        self.core = TrialBatch(self.setup, 1)
         self._episode = -1
         self._started = False
-        self._ref = reference(self.setup.task, self.setup.task.times)[0].tolist()
-        j = self.setup.plant.joint
-        self._fault_band = (j.lower_stop - self.setup.task.fault_depth, j.upper_stop + self.setup.task.fault_depth)
+        self._clipped = np.zeros(1, dtype=np.int64)
+        self._command = np.zeros((1, 2))
+        self._obs = np.zeros((1, 6), dtype=np.float32)
 
-    def _obs(self, y) -> np.ndarray:
-        obs = np.empty(5, dtype=np.float32)
-        observation_into(y, self.setup.task.strike_time - self.trial.k * self.setup.task.dt, self._low,
-                         self._high, obs)
-        return obs
+    @property
+    def plant_now(self):
+        """The plant of the current (or last) episode's trial (drift applied)."""
+        return self.core.params[0]
+
+    def _observe(self) -> np.ndarray:
+        t = self.setup.task
+        observations_into(self.core.y, self.core.k, self.core.ref, t.strike_time, t.dt, t.trial_length,
+                          self.setup.rated_pressure, self._low, self._high, self._obs)
+        return self._obs[0].copy()
+
+    def _info(self) -> dict:
+        return {"trial": self._episode, "clipped_actions": int(self._clipped[0]), "readings": self.core.y[0].copy()}
 
     def reset(self, *, seed=None, options=None):
         super().reset(seed=seed)
-        options = options or {}
+        options = {} if options is None else options
+        if not isinstance(options, dict):
+            raise ValueError(f"options: {type(options).__name__} is not allowed; must be a dict such as {{'trial': 3}}")
         if "trial" in options:
-            self._episode = int(options["trial"])
+            self._episode = check_trial(options["trial"], "options['trial']")
         else:
-            self._episode = 0 if seed is not None else self._episode + 1
-        y = self.trial.start(self.np_random, trial=self._episode)
-        self._clipped = 0
+            self._episode = 0 if seed is not None else min(self._episode + 1, MAX_TRIAL)
+        # a time limit from gym.make(..., max_episode_steps=N) also ends the trial here, with metrics
+        limit = self.spec.max_episode_steps if self.spec is not None else None
+        self.core.set_limit(limit)
+        self.core.begin([0], [self._episode], [self.np_random])
+        self.core.read()
+        self._clipped[0] = 0
         self._started = True
-        self._reward_sum = 0.0
-        return self._obs(y), {"trial": self._episode, "clipped_actions": 0}
+        return self._observe(), self._info()
 
     def step(self, action):
         if not self._started:
             raise RuntimeError("step: call reset() before step()")
-        a0, a1 = _action_pair(action)
-        c0, c1 = min(max(a0, -1.0), 1.0), min(max(a1, -1.0), 1.0)
-        self._clipped += (c0 != a0) + (c1 != a1)
-        half = self._half_range
-        command = ((c0 + 1.0) * half, (c1 + 1.0) * half)
-        task = self.setup.task
-        info = {"trial": self._episode, "clipped_actions": self._clipped}
-        try:
-            y = self.trial.advance(command)
-        except SimulationDiverged as exc:
-            self._started = False
-            info["fault"] = f"diverged: {exc}"
-            return self._obs(self.trial.readings[-1]), -FAULT_PENALTY, True, False, info
-        k = self.trial.k
-        reward = reward_at(k, y[0], y[1], self._ref[k], task.n_steps, task.strike_index, task.strike_speed)
-        q = self.trial.stepper._x[0, 0]
-        terminated = not (self._fault_band[0] <= q <= self._fault_band[1])
-        truncated = bool(self.trial.done and not terminated)
+        actions_to_commands(action, (2,), self.setup.rated_pressure, self._clipped, self._command)
+        core = self.core
+        core.step(self._command)
+        core.read()
+        terminated, truncated = bool(core.terminated[0]), bool(core.truncated[0])
+        # the metrics so far at every step, so a wrapper's time limit also ends with them
+        info = self._info()
+        info["metrics"] = core.metrics(0)
         if terminated:
-            reward -= FAULT_PENALTY
-            info["fault"] = "end stop struck deeper than task.fault_depth"
+            info["fault"] = core.fault_text(0)
         if terminated or truncated:
-            log = self.trial.readings
-            info["metrics"] = strike_metrics(task, log[:, 0], log[:, 1], log[:, 2:4])
             self._started = False
-        return self._obs(y), reward, terminated, truncated, info
-
-    def rollout(self, controller: str = "", seed=None):
-        """The current or last episode as a :class:`~muscle_sim.records.Rollout`."""
-        return self.trial.rollout(controller, seed)
+        return self._observe(), float(core.reward[0]), terminated, truncated, info
 
     def render(self):
         if self.render_mode != "rgb_array":
             return None
         from .render import draw_joint
 
-        x = self.trial.state
-        return draw_joint(self.setup, self.trial.params, x, self.trial.k * self.setup.task.dt)
+        return draw_joint(self.setup, self.core.params[0], self.core.state(0), int(self.core.k[0]) * self.setup.task.dt)

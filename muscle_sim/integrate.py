@@ -77,7 +77,7 @@ def _rk4_into(x, u, P, h, out):
 
 
 @law
-def advance_batch(x, history, command, slots, rows, h, slip, breakaway, weights):
+def advance_batch(x, history, command, slots, rows, h, slip, breakaway, weights, bad):
     """Advance every member of ``x`` (B, 6) by one control step, in place.
 
     ``history`` (D, B, 2) holds the last D commands, oldest first; ``command`` (B, 2) is this
@@ -85,9 +85,9 @@ def advance_batch(x, history, command, slots, rows, h, slip, breakaway, weights)
     N_PACKED) are the parameter rows. ``slip`` (B, 2, M) are the Maxwell-slip element states of
     both muscles (M = 0 without hysteresis), with ``breakaway`` and ``weights`` (M,): their
     engagement is held over each RK4 sub-step, then the elements follow the muscles' length
-    change ``dL_a = -r_p dq``, ``dL_b = +r_p dq`` (operator splitting). Returns the index of the
-    first member that left the physical range (non-finite, |angle| >= ANGLE_LIMIT or |rate| >=
-    RATE_LIMIT), or -1.
+    change ``dL_a = -r_p dq``, ``dL_b = +r_p dq`` (operator splitting). ``bad`` (B,) is set true
+    for each member that left the physical range (non-finite, |angle| >= ANGLE_LIMIT or |rate| >=
+    RATE_LIMIT), false for the others; returns the index of the first such member, or -1.
     """
     depth, n = history.shape[0], x.shape[0]
     for i in range(n):
@@ -96,7 +96,7 @@ def advance_batch(x, history, command, slots, rows, h, slip, breakaway, weights)
             history[d, i, 1] = history[d + 1, i, 1]
         history[depth - 1, i, 0] = command[i, 0]
         history[depth - 1, i, 1] = command[i, 1]
-    bad = -1
+    first = -1
     for i in range(n):
         P = rows[i if rows.shape[0] > 1 else 0]
         s = (x[i, 0], x[i, 1], x[i, 2], x[i, 3], x[i, 4], x[i, 5])
@@ -118,9 +118,10 @@ def advance_batch(x, history, command, slots, rows, h, slip, breakaway, weights)
         for k in range(N_STATE):
             if not math.isfinite(s[k]):
                 finite = False
-        if bad < 0 and not (finite and abs(s[0]) < ANGLE_LIMIT and abs(s[1]) < RATE_LIMIT):
-            bad = i
-    return bad
+        bad[i] = not (finite and abs(s[0]) < ANGLE_LIMIT and abs(s[1]) < RATE_LIMIT)
+        if bad[i] and first < 0:
+            first = i
+    return first
 
 
 def rk4_step(t, x, u, h, params):
@@ -171,6 +172,7 @@ class Stepper:
         self._x = np.zeros((self._n, N_STATE))
         self._history = np.zeros((self._depth, self._n, 2))
         self._command = np.zeros((self._n, 2))
+        self.diverged = np.zeros(self._n, dtype=np.bool_)
         self.reset(self._x.copy())
 
     @property
@@ -194,14 +196,35 @@ class Stepper:
         self._history[:, mask] = u_before
         self._slip[mask] = 0.0
 
-    def step(self, u):
-        """Advance one control step with command ``u`` [Pa] ((2,) or (batch, 2)); returns the new
-        state (the stepper's own array: copy it to keep it)."""
+    def set_member(self, i: int, params: PlantParams) -> None:
+        """Give member ``i`` its own parameters (e.g. the plant of its trial under drift); the
+        delay and the braid friction model must match the stepper's."""
+        if (delay_substeps(params, self.control_dt, self.n_substeps) != self.n_delay
+                or params.muscle.friction_model != self.params.muscle.friction_model
+                or params.muscle.friction_elements != self.params.muscle.friction_elements
+                or params.muscle.slip_length != self.params.muscle.slip_length):
+            raise ValueError("params: a member with another command delay or braid friction model cannot share "
+                             "this stepper")
+        if self._rows.shape[0] != self._n:
+            self._rows = np.ascontiguousarray(np.repeat(self._rows, self._n, axis=0))
+        self._rows[i] = pack(params)
+
+    def advance(self, u) -> int:
+        """Advance one control step with command ``u`` [Pa] ((2,) or (batch, 2)) without raising:
+        members that left the physical range are flagged in :attr:`diverged`; returns the index
+        of the first of them, or -1."""
         self._command[...] = u
-        bad = advance_batch(self._x, self._history, self._command, self._slots, self._rows, self.h, self._slip,
-                            self._breakaway, self._slip_weights)
+        first = advance_batch(self._x, self._history, self._command, self._slots, self._rows, self.h, self._slip,
+                              self._breakaway, self._slip_weights, self.diverged)
         self.k += 1
         self.t = self.k * self.control_dt
+        return first
+
+    def step(self, u):
+        """Advance one control step with command ``u`` [Pa] ((2,) or (batch, 2)); returns the new
+        state (the stepper's own array: copy it to keep it). Raises
+        :class:`~muscle_sim.errors.SimulationDiverged` if any member left the physical range."""
+        bad = self.advance(u)
         if bad >= 0:
             raise SimulationDiverged(f"state left the physical range at t = {self.t:.4f} s: {self._x[bad]}")
         return self.x

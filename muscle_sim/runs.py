@@ -7,49 +7,38 @@ from pathlib import Path
 import numpy as np
 
 from . import safety
-from .errors import SimulationDiverged
 from .records import save_figure_atomic, write_json_atomic
-from .simulation import Setup, StrikeTrial
+from .simulation import Setup
 from .report import config_text, write_report
 from .tables import EPISODE, METRIC_COLUMNS, cell, cells, metric_words
-from .tasks import strike_metrics
+from .trial import TrialBatch
 
 
 def run_trial(setup: Setup, controller, trial: int, rng: np.random.Generator, seed=None):
     """One trial of ``setup`` under ``controller``; returns ``(rollout, metrics)``.
 
-    A divergence or a hard stop fault ends the trial early; metrics then cover what ran and carry
-    ``fault``.
+    A shell over :class:`~muscle_sim.trial.TrialBatch` (one member, logged): a divergence or a
+    hard stop fault ends the trial early; metrics then cover what ran and carry ``fault`` (and
+    such a trial is never ``settled``).
     """
-    sim = StrikeTrial(setup)
-    y = sim.start(rng, trial=trial)
+    core = TrialBatch(setup, 1, record=True)
+    core.begin([0], [trial], [rng])
+    core.read()
     controller.reset(setup)
     task = setup.task
-    fault = None
-    limit = (setup.plant.joint.lower_stop - task.fault_depth, setup.plant.joint.upper_stop + task.fault_depth)
-    above_rated, peak_requested = 0, 0.0
-    while not sim.done:
-        u = controller.command(sim.k, sim.k * task.dt, y)
-        requested = max(float(u[0]), float(u[1]))
-        above_rated += requested > setup.rated_pressure
-        peak_requested = max(peak_requested, requested)
-        u = (min(max(float(u[0]), 0.0), sim.params.pneumatics.supply_pressure),
-             min(max(float(u[1]), 0.0), sim.params.pneumatics.supply_pressure))
-        try:
-            y = sim.advance(u)
-        except SimulationDiverged as exc:
-            fault = f"simulation diverged: {exc}"
-            break
-        if not limit[0] <= sim.state[0] <= limit[1]:
-            fault = "end stop struck deeper than task.fault_depth"
-            break
-    rollout = sim.rollout(controller=getattr(controller, "name", ""), seed=seed)
-    metrics = strike_metrics(task, rollout.measured[:, 0], rollout.measured[:, 1], rollout.measured[:, 2:4])
-    metrics["fault"] = fault
+    requested = np.zeros((1, 2))
+    while not (core.terminated[0] or core.truncated[0]):
+        k = int(core.k[0])
+        # the logged reading (not the batch's live array): controllers may keep what they are given
+        requested[0] = controller.command(k, k * task.dt, core.logged_reading(0))
+        core.step(requested)
+        core.read()
+    rollout = core.rollout(0, controller=getattr(controller, "name", ""), seed=seed)
+    metrics = core.metrics(0)
     # what the controller asked, before the valves limit it to [0, supply]: the rollout logs
     # the applied commands, these two say what was requested
-    metrics["commands_above_rated"] = int(above_rated)
-    metrics["peak_command_requested_kpa"] = peak_requested / 1e3
+    metrics["commands_above_rated"] = int(core.above_rated[0])
+    metrics["peak_command_requested_kpa"] = float(core.peak_requested[0]) / 1e3
     return rollout, metrics
 
 

@@ -48,11 +48,14 @@ class SensorParams:
 
 
 @law
-def _readings_into(x, filtered, noise, levels, angle_step, blend, y):
+def _readings_into(x, filtered, noise, levels, angle_step, blend, live, y):
     """Readings of states ``x`` (B, 6) into ``y`` (B, 4); ``filtered`` (B, 2) is updated in place.
     ``noise`` (B, n) holds standard normals for the noisy channels in the order angle, rate,
-    pressure A, pressure B (only those whose level in ``levels`` is non-zero)."""
+    pressure A, pressure B (only those whose level in ``levels`` is non-zero). Members where
+    ``live`` is false are not read (their ``y`` and filter state stay as they are)."""
     for i in range(x.shape[0]):
+        if not live[i]:
+            continue
         col = 0
         for c in range(4):
             if c < 2:
@@ -81,6 +84,7 @@ class SensorModel:
         self.blend = sensors.pressure_blend(dt)
         self.filtered = np.zeros((members, 2))
         self._noise = np.empty((members, self.n_noisy))
+        self._all = np.ones(members, dtype=np.bool_)
 
     def read(self, x, rng: np.random.Generator, out):
         """Readings of states ``x`` (members, 6) into ``out`` (members, 4); advances the filters.
@@ -89,7 +93,13 @@ class SensorModel:
         non-zero), member by member; a noiseless sensor leaves the generator untouched."""
         if self.n_noisy:
             rng.standard_normal(out=self._noise)
-        _readings_into(x, self.filtered, self._noise, self.levels, self.angle_step, self.blend, out)
+        _readings_into(x, self.filtered, self._noise, self.levels, self.angle_step, self.blend, self._all, out)
+        return out
+
+    def read_with(self, x, noise, live, out):
+        """Readings of the members where ``live`` is true, with the standard normals ``noise``
+        (members, n) drawn by the caller (e.g. one generator per member); others untouched."""
+        _readings_into(x, self.filtered, noise, self.levels, self.angle_step, self.blend, live, out)
         return out
 
 

@@ -118,42 +118,104 @@ def reference(task: StrikeTask, t):
     return q, qd, qdd
 
 
-def strike_metrics(task: StrikeTask, angle, rate, pressures) -> dict:
-    """Metrics of one trial from sampled signals (k dt, k = 0..n_steps).
+#: Columns of a trial's running totals (one row per trial): what its metrics are made of. The
+#: totals are folded one sample at a time (:func:`fold_sample`), by the trial core while it steps
+#: and by :func:`strike_metrics` over a logged trial, and turned into metrics by one function
+#: (:func:`metrics_from_totals`): every path reports the same numbers the same way.
+SUM_SQ, PEAK, LAST_OUT, STRIKE_ERR, SPEED_ERR, SAMPLES = range(6)
+N_TOTALS = 6
 
-    Returns ``rms_error_deg`` (swing tracking), ``strike_angle_error_deg``,
-    ``strike_speed_error_pct``, ``peak_pressure_kpa``, ``settle_time_s`` (first time after the
-    turn from which the angle stays within the tolerance of home; None if never) and ``settled``.
+
+def fresh_totals(members: int = 1) -> np.ndarray:
+    """Running totals of ``members`` trials before their first sample."""
+    totals = np.zeros((members, N_TOTALS))
+    clear_totals(totals, np.ones(members, dtype=np.bool_))
+    return totals
+
+
+@law
+def clear_totals(totals, mask):
+    """Reset the rows of ``totals`` where ``mask`` is true (a trial starts)."""
+    for i in range(totals.shape[0]):
+        if mask[i]:
+            totals[i, SUM_SQ] = 0.0
+            totals[i, PEAK] = -math.inf
+            totals[i, LAST_OUT] = -1.0
+            totals[i, STRIKE_ERR] = math.nan
+            totals[i, SPEED_ERR] = math.nan
+            totals[i, SAMPLES] = 0.0
+
+
+@law
+def fold_sample(k, angle, rate, p_a, p_b, ref_angle, dt, home, tolerance, turn_time, strike_index,
+                strike_angle, strike_speed, row):
+    """Fold sample ``k`` (readings angle [rad], rate [rad/s], pressures [Pa]; the reference angle
+    there) into one trial's totals ``row``: squared tracking error, peak pressure, the last sample
+    after the turn outside the settling band of home, the strike errors at the strike sample."""
+    err = angle - ref_angle
+    row[SUM_SQ] += err * err
+    row[PEAK] = max(row[PEAK], p_a, p_b)
+    if abs(angle - home) > tolerance and k * dt >= turn_time:
+        row[LAST_OUT] = k
+    if k == strike_index:
+        row[STRIKE_ERR] = (angle - strike_angle) * (180.0 / math.pi)
+        row[SPEED_ERR] = 100.0 * (rate - strike_speed) / strike_speed
+    row[SAMPLES] += 1.0
+
+
+@law
+def _fold_log(angle, rate, pressures, ref, dt, home, tolerance, turn_time, strike_index, strike_angle,
+              strike_speed, row):
+    for k in range(angle.shape[0]):
+        fold_sample(k, angle[k], rate[k], pressures[k, 0], pressures[k, 1], ref[k], dt, home, tolerance, turn_time,
+                    strike_index, strike_angle, strike_speed, row)
+
+
+def metrics_from_totals(task: StrikeTask, row, fault: str | None = None) -> dict:
+    """The metrics of one trial from its totals (see :func:`strike_metrics` for the keys).
+
+    The settle time is the time of the first sample after the turn from which the angle stays
+    within the tolerance of home (the turn itself if it never leaves); it is None when the log
+    ends before ``task.settle_time`` (too short to tell) or is still outside at its last sample.
+    A trial that ended in a ``fault`` is never settled.
     """
-    angle = np.asarray(angle, dtype=float)
-    rate = np.asarray(rate, dtype=float)
-    n = angle.shape[-1]
-    t = np.arange(n) * task.dt
-    ref, _, _ = reference(task, t)
-    k = task.strike_index
-    rms = math.degrees(float(np.sqrt(np.mean((angle - ref) ** 2))))
-    out_of_band = np.abs(angle - task.home_angle) > task.settle_tolerance
-    after_turn = t >= task.turn_time
-    late = np.nonzero(out_of_band & after_turn)[0]
-    if k >= n:
-        strike_err, speed_err = float("nan"), float("nan")
-    else:
-        strike_err = math.degrees(float(angle[k] - task.strike_angle))
-        speed_err = 100.0 * float(rate[k] - task.strike_speed) / task.strike_speed
-    if late.size == 0:
+    n = int(row[SAMPLES])
+    last_out = int(row[LAST_OUT])
+    if n == 0 or (n - 1) * task.dt < task.settle_time - 1e-12:
+        settle = None
+    elif last_out < 0:
         settle = float(task.turn_time)
-    elif late[-1] + 1 < n:
-        settle = float(t[late[-1] + 1])
+    elif last_out + 1 < n:
+        settle = float((last_out + 1) * task.dt)
     else:
         settle = None
     return {
-        "rms_error_deg": rms,
-        "strike_angle_error_deg": strike_err,
-        "strike_speed_error_pct": speed_err,
-        "peak_pressure_kpa": float(np.max(pressures)) / 1e3 if np.size(pressures) else 0.0,
+        "rms_error_deg": math.degrees(math.sqrt(row[SUM_SQ] / n)) if n else float("nan"),
+        "strike_angle_error_deg": None if math.isnan(row[STRIKE_ERR]) else float(row[STRIKE_ERR]),
+        "strike_speed_error_pct": None if math.isnan(row[SPEED_ERR]) else float(row[SPEED_ERR]),
+        "peak_pressure_kpa": float(row[PEAK]) / 1e3 if n else 0.0,
         "settle_time_s": settle,
-        "settled": settle is not None and settle <= task.settle_time + 1e-12,
+        "settled": fault is None and settle is not None and settle <= task.settle_time + 1e-12,
+        "fault": fault,
     }
+
+
+def strike_metrics(task: StrikeTask, angle, rate, pressures, fault: str | None = None) -> dict:
+    """Metrics of one logged trial from sampled signals (k dt, k = 0..n-1).
+
+    Returns ``rms_error_deg`` (swing tracking), ``strike_angle_error_deg``,
+    ``strike_speed_error_pct`` (None if the log ends before the strike), ``peak_pressure_kpa``,
+    ``settle_time_s`` (:func:`metrics_from_totals`), ``settled`` and ``fault`` (as given).
+    """
+    angle = np.ascontiguousarray(angle, dtype=float)
+    rate = np.ascontiguousarray(rate, dtype=float)
+    pressures = np.ascontiguousarray(np.broadcast_to(np.asarray(pressures, dtype=float), angle.shape + (2,)))
+    n = angle.shape[-1]
+    ref, _, _ = reference(task, np.arange(n) * task.dt)
+    row = fresh_totals(1)[0]
+    _fold_log(angle, rate, pressures, ref, task.dt, task.home_angle, task.settle_tolerance, task.turn_time,
+              task.strike_index, task.strike_angle, task.strike_speed, row)
+    return metrics_from_totals(task, row, fault)
 
 
 #: Reward weights: tracking (per deg^2, averaged over the trial), and at the strike instant

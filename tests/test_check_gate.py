@@ -74,7 +74,7 @@ def test_whatever_check_accepts_runs_and_resets(pre, home_bar, pulley_mm, home_d
     setup = Setup.from_config(raw)
     _, metrics = run_trial(setup, FeedforwardController(model_only_profile(setup)), 0, np.random.default_rng(0))
     assert np.isfinite(metrics["rms_error_deg"])
-    env = gym.make("pamjoint/FlipperStrike-v0", config=raw)
+    env = gym.make("pamjoint/FlipperStrike-v1", config=raw)
     obs, _ = env.reset(seed=0)
     assert np.all(np.isfinite(obs))
     env.close()

@@ -18,7 +18,7 @@ LAYERS = {
                 "muscle_sim.hysteresis", "muscle_sim.plant", "muscle_sim.integrate", "muscle_sim.sensors",
                 "muscle_sim.drift"],
     "trial": ["muscle_sim.tasks", "muscle_sim.config", "muscle_sim.records", "muscle_sim.simulation",
-              "muscle_sim.runs", "muscle_sim.plotting", "muscle_sim.render", "muscle_sim.scenarios",
+              "muscle_sim.trial", "muscle_sim.runs", "muscle_sim.plotting", "muscle_sim.render", "muscle_sim.scenarios",
               "muscle_sim.report"],
     "controllers": [f"controllers.{p.stem}" for p in sorted((ROOT / "controllers").glob("*.py"))
                     if p.stem != "__init__"],
