@@ -150,17 +150,20 @@ _DT, _HOME, _TOL, _TURN, _STRIKE_K, _STRIKE_Q, _STRIKE_V, _N_STEPS, _LIMIT, _LOW
 
 
 @law
-def _account(y, x, k, read, fresh, ref, consts, totals, fault, reward, terminated, truncated):
+def _account(y, x, k, read, active, fresh, ref, consts, totals, fault, reward, terminated, truncated):
     """Per member read this step: fold the sample into its totals; unless it just started, its
     reward (:func:`~muscle_sim.tasks.reward_at`) and end flags (fault band of the TRUE angle,
-    step limit). A member not read (it diverged) ends with the fault penalty. ``consts`` holds
-    the task's numbers (see :meth:`TrialBatch._constants`)."""
+    step limit). A member not read (it diverged) ends with the fault penalty; members not
+    ``active`` are left as they are. ``consts`` holds the task's numbers
+    (see :meth:`TrialBatch._constants`)."""
     dt, home, tolerance, turn_time = consts[_DT], consts[_HOME], consts[_TOL], consts[_TURN]
     strike_index, strike_angle, strike_speed = int(consts[_STRIKE_K]), consts[_STRIKE_Q], consts[_STRIKE_V]
     n_steps, limit = int(consts[_N_STEPS]), int(consts[_LIMIT])
     low_band, high_band, fault_penalty = consts[_LOW], consts[_HIGH], consts[_PENALTY]
     last = ref.shape[0] - 1
     for i in range(y.shape[0]):
+        if not active[i]:
+            continue
         if not read[i]:
             reward[i] = -fault_penalty
             terminated[i] = True
@@ -296,6 +299,7 @@ class TrialBatch:
         self.peak_requested = np.zeros(n)
         self._fresh = np.zeros(n, dtype=np.bool_)
         self._read = np.ones(n, dtype=np.bool_)
+        self._all = np.ones(n, dtype=np.bool_)
         self._x_before = np.zeros_like(self.stepper._x)
         self.record = record
         if record:
@@ -371,19 +375,25 @@ class TrialBatch:
             self._fault_at[bad] = (self.k[bad] + 1) * self.task.dt
         self.k += 1
 
-    def read(self) -> np.ndarray:
-        """Readings of every member that did not just diverge; folds them into the metrics and
-        sets ``reward``, ``terminated`` and ``truncated`` (members that just began: reward 0,
-        not done). Returns ``y`` (members, 4), the batch's own array."""
+    def read(self, members=None) -> np.ndarray:
+        """Readings of every member (or those where the mask ``members`` is true) that did not
+        just diverge; folds them into the metrics and sets ``reward``, ``terminated`` and
+        ``truncated`` (members that just began: reward 0, not done). Returns ``y`` (members, 4),
+        the batch's own array."""
         read = np.logical_not(self.stepper.diverged, out=self._read)
-        noise = self.noise.take(read)
-        self.sensors.read_with(self.stepper._x, noise, read, self.y)
-        _account(self.y, self.stepper._x, self.k, read, self._fresh, self.ref, self._consts, self.totals, self.fault,
-                 self.reward, self.terminated, self.truncated)
+        active = self._all if members is None else np.asarray(members, dtype=np.bool_)
+        live = read if members is None else read & active
+        noise = self.noise.take(live)
+        self.sensors.read_with(self.stepper._x, noise, live, self.y)
+        _account(self.y, self.stepper._x, self.k, read, active, self._fresh, self.ref, self._consts, self.totals,
+                 self.fault, self.reward, self.terminated, self.truncated)
         if self.record:
-            rows = np.flatnonzero(read)
+            rows = np.flatnonzero(live)
             self._y_log[rows, np.minimum(self.k[rows], self.task.n_steps)] = self.y[rows]
-        self._fresh[:] = False
+        if members is None:
+            self._fresh[:] = False
+        else:
+            self._fresh &= ~active
         return self.y
 
     def fault_text(self, i: int):

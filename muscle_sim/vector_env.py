@@ -22,7 +22,9 @@ class FlipperStrikeVectorEnv(VectorEnv):
     ``s + i`` and starts trial 0; ``options={"trial": k}`` (one index, or one per member) starts
     trial k; a reset without either goes on to each member's next trial. Autoreset mode is
     next-step: the step after a member ends restarts it on its next trial (its action is ignored,
-    reward 0). ``info`` holds ``trial``, ``clipped_actions`` and ``readings`` (SI) of every member
+    reward 0); with ``autoreset_mode=AutoresetMode.SAME_STEP`` a member that ends is restarted in
+    the same step, its last observation and info in ``info["final_obs"]`` and
+    ``info["final_info"]``, as Gymnasium's same-step mode has them. ``info`` holds ``trial``, ``clipped_actions`` and ``readings`` (SI) of every member
     with ``_name`` masks, and at a member's end ``metrics`` (a dict of arrays with masks) and,
     after a fault, ``fault``, laid out as the sync vector env lays them out. A member whose
     simulation diverges ends with a fault; the others go on.
@@ -31,7 +33,7 @@ class FlipperStrikeVectorEnv(VectorEnv):
     metadata = {"render_modes": [], "autoreset_mode": AutoresetMode.NEXT_STEP}
 
     def __init__(self, num_envs: int = 1, config=None, max_episode_steps: int | None = None,
-                 render_mode: str | None = None):
+                 render_mode: str | None = None, autoreset_mode=AutoresetMode.NEXT_STEP):
         if isinstance(num_envs, bool) or not isinstance(num_envs, (int, np.integer)) or num_envs < 1:
             raise ValueError(f"num_envs: {num_envs!r} is not allowed; must be a whole number >= 1")
         if render_mode is not None:
@@ -40,6 +42,12 @@ class FlipperStrikeVectorEnv(VectorEnv):
         if max_episode_steps is not None and (isinstance(max_episode_steps, bool) or not isinstance(
                 max_episode_steps, (int, np.integer)) or max_episode_steps < 1):
             raise ValueError(f"max_episode_steps: {max_episode_steps!r} is not allowed; must be a whole number >= 1")
+        modes = {m.value: m for m in (AutoresetMode.NEXT_STEP, AutoresetMode.SAME_STEP)}
+        mode = modes.get(getattr(autoreset_mode, "value", autoreset_mode))
+        if mode is None:
+            raise ValueError(f"autoreset_mode: {autoreset_mode!r} is not allowed; must be 'NextStep' or 'SameStep'")
+        self.autoreset_mode = mode
+        self.metadata = {**self.metadata, "autoreset_mode": mode}
         self.setup = Setup.from_config(DEMO_CONFIG if config is None else config)
         self.num_envs = int(num_envs)
         self.render_mode = None
@@ -113,22 +121,41 @@ class FlipperStrikeVectorEnv(VectorEnv):
         core = self.core
         actions_to_commands(actions, (self.num_envs, 2), self.setup.rated_pressure, self._clipped, self._command)
         core.step(self._command)
+        same_step = self.autoreset_mode is AutoresetMode.SAME_STEP
         restart = self._needs_reset
-        if restart.any():
-            members = np.flatnonzero(restart)
-            core.begin(members, np.minimum(core.trial[members] + 1, MAX_TRIAL))
-            self._clipped[restart] = 0
+        if not same_step and restart.any():
+            self._restart(restart)
         core.read()
         reward, terminated, truncated = core.reward.copy(), core.terminated.copy(), core.truncated.copy()
         done = terminated | truncated
-        self._needs_reset = done
         info = self._info()
-        for i in np.flatnonzero(done).tolist():
-            ending = {"metrics": core.metrics(i)}
-            if terminated[i]:
-                ending["fault"] = core.fault_text(i)
-            info = self._add_info(info, ending, i)
+        ending = np.flatnonzero(done).tolist()
+        if same_step and ending:
+            final_obs = self._observe()
+            infos = {}
+            for i in ending:
+                last = {"trial": int(core.trial[i]), "clipped_actions": int(self._clipped[i]),
+                        "readings": core.y[i].copy(), "metrics": core.metrics(i)}
+                if terminated[i]:
+                    last["fault"] = core.fault_text(i)
+                infos = self._add_info(infos, {"final_obs": final_obs[i], "final_info": last}, i)
+            self._restart(done)
+            core.read(done)
+            info = {**infos, **self._info()}
+        else:
+            for i in ending:
+                last = {"metrics": core.metrics(i)}
+                if terminated[i]:
+                    last["fault"] = core.fault_text(i)
+                info = self._add_info(info, last, i)
+            self._needs_reset = done
         return self._observe(), reward, terminated, truncated, info
+
+    def _restart(self, mask) -> None:
+        """Members where ``mask`` is true begin their next trial (autoreset)."""
+        members = np.flatnonzero(mask)
+        self.core.begin(members, np.minimum(self.core.trial[members] + 1, MAX_TRIAL))
+        self._clipped[mask] = 0
 
     def close_extras(self, **kwargs):
         self._started = False

@@ -5,6 +5,7 @@ import gymnasium as gym
 import numpy as np
 import pytest
 from gymnasium.utils.env_checker import check_env
+from gymnasium.vector import AutoresetMode
 
 import muscle_sim  # noqa: F401  (registers the ids)
 from muscle_sim.env import FlipperStrikeEnv
@@ -110,17 +111,22 @@ def _slam_actions(n):
     return np.tile(np.array([1.0, -1.0], dtype=np.float32), (n, 1))
 
 
-def _run_both(config, n_envs, steps, actions_of, seed, max_episode_steps=None):
+def _run_both(config, n_envs, steps, actions_of, seed, max_episode_steps=None, same_step=False):
     # Reference: Gymnasium's own SyncVectorEnv (make_vec, vectorization_mode="sync"): n single
-    # envs, env i seeded s + i, next-step autoreset. The native vector env must match it.
+    # envs, env i seeded s + i, next-step (or same-step) autoreset. The native vector env must
+    # match it.
     kw = {} if max_episode_steps is None else {"max_episode_steps": max_episode_steps}
-    sync = gym.make_vec(ENV_ID, num_envs=n_envs, vectorization_mode="sync", config=str(config), **kw)
-    native = gym.make_vec(ENV_ID, num_envs=n_envs, vectorization_mode="vector_entry_point", config=str(config), **kw)
+    mode = AutoresetMode.SAME_STEP if same_step else AutoresetMode.NEXT_STEP
+    sync = gym.make_vec(ENV_ID, num_envs=n_envs, vectorization_mode="sync", config=str(config),
+                        vector_kwargs={"autoreset_mode": mode}, **kw)
+    native = gym.make_vec(ENV_ID, num_envs=n_envs, vectorization_mode="vector_entry_point", config=str(config),
+                          autoreset_mode=mode, **kw)
     assert isinstance(native.unwrapped, FlipperStrikeVectorEnv)
     out = []
     for venv in (sync, native):
         obs, info = venv.reset(seed=seed)
-        record = {"obs": [obs], "reward": [], "term": [], "trunc": [], "trial": [info["trial"]], "metrics": []}
+        record = {"obs": [obs], "reward": [], "term": [], "trunc": [], "trial": [info["trial"]], "metrics": [],
+                  "final_obs": []}
         for t in range(steps):
             obs, r, term, trunc, info = venv.step(actions_of(t))
             record["obs"].append(obs)
@@ -128,6 +134,11 @@ def _run_both(config, n_envs, steps, actions_of, seed, max_episode_steps=None):
             record["term"].append(term)
             record["trunc"].append(trunc)
             record["trial"].append(info["trial"])
+            if same_step and (term | trunc).any():
+                ended = info["_final_obs"]
+                record["final_obs"].append((t, ended.copy(), np.stack([o for o, e in zip(info["final_obs"], ended)
+                                                                        if e])))
+                info = {**info["final_info"], "_metrics": info["final_info"]["_metrics"]}
             if (term | trunc).any():
                 # at an end both carry the metrics in the same place (the sync env, whose single
                 # envs report the metrics so far at every step, also elsewhere)
@@ -146,6 +157,10 @@ def _assert_same(sync, native):
         np.testing.assert_allclose(np.array(native[key]), np.array(sync[key]), rtol=1e-6, atol=1e-9)
     for key in ("term", "trunc", "trial"):
         assert np.array_equal(np.array(native[key]), np.array(sync[key])), key
+    assert len(native["final_obs"]) == len(sync["final_obs"])
+    for (t1, e1, o1), (t2, e2, o2) in zip(sync["final_obs"], native["final_obs"]):
+        assert t1 == t2 and np.array_equal(e1, e2)
+        np.testing.assert_allclose(o2, o1, rtol=1e-6, atol=1e-9)
     assert len(native["metrics"]) == len(sync["metrics"]) > 0
     for (t1, d1, m1, v1, s1), (t2, d2, m2, v2, s2) in zip(sync["metrics"], native["metrics"]):
         ended = m2
@@ -178,6 +193,15 @@ def test_native_vector_env_matches_the_sync_vector_env_through_faults():
     sync, native = _run_both(DRIFT, 3, 460, actions_of, seed=4)
     _assert_same(sync, native)
     assert np.array(native["term"])[:, 1].any()
+
+
+def test_native_vector_env_matches_the_sync_vector_env_in_same_step_mode():
+    rng = np.random.default_rng(8)
+    actions = rng.uniform(-1.0, 1.0, size=(100, 2, 2)).astype(np.float32)
+    actions[:, 1] = _slam_actions(100)                  # member 1 faults early, again and again
+    sync, native = _run_both(DRIFT, 2, 100, lambda t: actions[t], seed=5, max_episode_steps=30, same_step=True)
+    _assert_same(sync, native)
+    assert len(native["final_obs"]) >= 3
 
 
 def test_a_trial_ending_in_a_fault_is_never_settled_on_any_path():
