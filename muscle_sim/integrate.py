@@ -209,6 +209,13 @@ class Stepper:
             self._rows = np.ascontiguousarray(np.repeat(self._rows, self._n, axis=0))
         self._rows[i] = pack(params)
 
+    def kernel_args(self) -> tuple:
+        """What :func:`advance_batch` takes besides the state and the command: ``(history,
+        slots, rows, h, slip, breakaway, weights, diverged)`` (for callers that fuse it into
+        their own compiled step)."""
+        return (self._history, self._slots, self._rows, self.h, self._slip, self._breakaway, self._slip_weights,
+                self.diverged)
+
     def advance(self, u) -> int:
         """Advance one control step with command ``u`` [Pa] ((2,) or (batch, 2)) without raising:
         members that left the physical range are flagged in :attr:`diverged`; returns the index

@@ -48,7 +48,7 @@ class SensorParams:
 
 
 @law
-def _readings_into(x, filtered, noise, levels, angle_step, blend, live, y):
+def readings_into(x, filtered, noise, levels, angle_step, blend, live, y):
     """Readings of states ``x`` (B, 6) into ``y`` (B, 4); ``filtered`` (B, 2) is updated in place.
     ``noise`` (B, n) holds standard normals for the noisy channels in the order angle, rate,
     pressure A, pressure B (only those whose level in ``levels`` is non-zero). Members where
@@ -93,13 +93,13 @@ class SensorModel:
         non-zero), member by member; a noiseless sensor leaves the generator untouched."""
         if self.n_noisy:
             rng.standard_normal(out=self._noise)
-        _readings_into(x, self.filtered, self._noise, self.levels, self.angle_step, self.blend, self._all, out)
+        readings_into(x, self.filtered, self._noise, self.levels, self.angle_step, self.blend, self._all, out)
         return out
 
     def read_with(self, x, noise, live, out):
         """Readings of the members where ``live`` is true, with the standard normals ``noise``
         (members, n) drawn by the caller (e.g. one generator per member); others untouched."""
-        _readings_into(x, self.filtered, noise, self.levels, self.angle_step, self.blend, live, out)
+        readings_into(x, self.filtered, noise, self.levels, self.angle_step, self.blend, live, out)
         return out
 
 

@@ -179,21 +179,21 @@ def metrics_from_totals(task: StrikeTask, row, fault: str | None = None) -> dict
     ends before ``task.settle_time`` (too short to tell) or is still outside at its last sample.
     A trial that ended in a ``fault`` is never settled.
     """
-    n = int(row[SAMPLES])
-    last_out = int(row[LAST_OUT])
-    if n == 0 or (n - 1) * task.dt < task.settle_time - 1e-12:
+    sum_sq, peak, last_out, strike_err, speed_err, samples = row.tolist()
+    n, last_out, dt = int(samples), int(last_out), task.dt
+    if n == 0 or (n - 1) * dt < task.settle_time - 1e-12:
         settle = None
     elif last_out < 0:
         settle = float(task.turn_time)
     elif last_out + 1 < n:
-        settle = float((last_out + 1) * task.dt)
+        settle = (last_out + 1) * dt
     else:
         settle = None
     return {
-        "rms_error_deg": math.degrees(math.sqrt(row[SUM_SQ] / n)) if n else float("nan"),
-        "strike_angle_error_deg": None if math.isnan(row[STRIKE_ERR]) else float(row[STRIKE_ERR]),
-        "strike_speed_error_pct": None if math.isnan(row[SPEED_ERR]) else float(row[SPEED_ERR]),
-        "peak_pressure_kpa": float(row[PEAK]) / 1e3 if n else 0.0,
+        "rms_error_deg": math.degrees(math.sqrt(sum_sq / n)) if n else math.nan,
+        "strike_angle_error_deg": None if strike_err != strike_err else strike_err,
+        "strike_speed_error_pct": None if speed_err != speed_err else speed_err,
+        "peak_pressure_kpa": peak / 1e3 if n else 0.0,
         "settle_time_s": settle,
         "settled": fault is None and settle is not None and settle <= task.settle_time + 1e-12,
         "fault": fault,

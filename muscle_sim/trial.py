@@ -22,10 +22,10 @@ import numpy as np
 
 from .compiled import law
 from .drift import drifted
-from .integrate import Stepper
+from .integrate import Stepper, advance_batch
 from .plant import initial_state
 from .records import Rollout
-from .sensors import SensorModel
+from .sensors import SensorModel, readings_into
 from .simulation import Setup, home_pressures
 from .tasks import FAULT_PENALTY, clear_totals, fold_sample, fresh_totals, metrics_from_totals, reference, reward_at
 from .yaml_input import shorten
@@ -205,6 +205,50 @@ def _take_rows(buf, pos, size, left, live, out, empty):
     return 0
 
 
+@law
+def _command_and_advance(requested, supply, rated, above, peak, applied, x, x_before, k, history, slots, rows, h,
+                         slip, breakaway, weights, diverged):
+    """One control step of the batch in one compiled call: the requested pressures counted and
+    clipped (:func:`_apply`), the physics advanced (:func:`~muscle_sim.integrate.advance_batch`),
+    a member that left the physical range put back to its last state, every step count raised.
+    Returns the index of the first member that diverged, or -1."""
+    _apply(requested, supply, rated, above, peak, applied)
+    for i in range(x.shape[0]):
+        for c in range(x.shape[1]):
+            x_before[i, c] = x[i, c]
+    first = advance_batch(x, history, applied, slots, rows, h, slip, breakaway, weights, diverged)
+    if first >= 0:
+        for i in range(x.shape[0]):
+            if diverged[i]:
+                for c in range(x.shape[1]):
+                    x[i, c] = x_before[i, c]
+    for i in range(k.shape[0]):
+        k[i] += 1
+    return first
+
+
+@law
+def _read_and_account(x, diverged, active, read, live, buf, pos, size, left, empty, noise, filtered, levels,
+                      angle_step, blend, y, k, fresh, ref, consts, totals, fault, reward, terminated, truncated):
+    """Readings of the active members that did not diverge (noise from their buffers,
+    :func:`_take_rows`), folded into their totals with reward and end flags (:func:`_account`),
+    in one compiled call. Returns the number of live members whose noise buffer is used up
+    (marked in ``empty``; then nothing is done and the caller refills and calls again), else 0."""
+    for i in range(x.shape[0]):
+        read[i] = not diverged[i]
+        live[i] = read[i] and active[i]
+    if noise.shape[1] > 0:
+        missing = _take_rows(buf, pos, size, left, live, noise, empty)
+        if missing:
+            return missing
+    readings_into(x, filtered, noise, levels, angle_step, blend, live, y)
+    _account(y, x, k, read, active, fresh, ref, consts, totals, fault, reward, terminated, truncated)
+    for i in range(x.shape[0]):
+        if active[i]:
+            fresh[i] = False
+    return 0
+
+
 class NoiseStreams:
     """Standard normals for each member's readings from the member's own generator, drawn in
     blocks of up to :data:`NOISE_BLOCK` rows but consumed exactly as one draw per reading would.
@@ -247,9 +291,17 @@ class NoiseStreams:
         if not self.width:
             return self.out
         while _take_rows(self._buf, self._pos, self._size, self._left, live, self.out, self._empty):
-            for i in np.flatnonzero(self._empty).tolist():
-                self._refill(i)
+            self.refill_empty()
         return self.out
+
+    def kernel_args(self) -> tuple:
+        """``(buf, pos, size, left, empty, out)`` for :func:`_take_rows` in a fused call."""
+        return self._buf, self._pos, self._size, self._left, self._empty, self.out
+
+    def refill_empty(self) -> None:
+        """Draw the next block of every member marked empty by :func:`_take_rows`."""
+        for i in np.flatnonzero(self._empty).tolist():
+            self._refill(i)
 
     def _refill(self, i: int) -> None:
         gen = self.gens[i]
@@ -299,6 +351,8 @@ class TrialBatch:
         self.peak_requested = np.zeros(n)
         self._fresh = np.zeros(n, dtype=np.bool_)
         self._read = np.ones(n, dtype=np.bool_)
+        self._live = np.ones(n, dtype=np.bool_)
+        self._rated = float(setup.rated_pressure)
         self._all = np.ones(n, dtype=np.bool_)
         self._x_before = np.zeros_like(self.stepper._x)
         self.record = record
@@ -363,37 +417,30 @@ class TrialBatch:
         """Every member advances one control step under the pressures ``requested`` (members, 2)
         [Pa]: counted against the rating, clipped to 0 .. supply. A member that leaves the
         physical range keeps its last state and ends with a divergence fault at the next read."""
-        _apply(requested, self.supply, self.setup.rated_pressure, self.above_rated, self.peak_requested, self.applied)
-        if self.record:
-            self._u_log[np.arange(self.members), np.minimum(self.k, self.task.n_steps)] = self.applied
-        x = self.stepper._x
-        self._x_before[...] = x
-        if self.stepper.advance(self.applied) >= 0:
+        if _command_and_advance(requested, self.supply, self._rated, self.above_rated, self.peak_requested,
+                                self.applied, self.stepper._x, self._x_before, self.k,
+                                *self.stepper.kernel_args()) >= 0:
             bad = self.stepper.diverged
-            x[bad] = self._x_before[bad]
             self.fault[bad] = DIVERGED
-            self._fault_at[bad] = (self.k[bad] + 1) * self.task.dt
-        self.k += 1
+            self._fault_at[bad] = self.k[bad] * self.task.dt
+        if self.record:
+            self._u_log[np.arange(self.members), np.minimum(self.k - 1, self.task.n_steps)] = self.applied
 
     def read(self, members=None) -> np.ndarray:
         """Readings of every member (or those where the mask ``members`` is true) that did not
         just diverge; folds them into the metrics and sets ``reward``, ``terminated`` and
         ``truncated`` (members that just began: reward 0, not done). Returns ``y`` (members, 4),
         the batch's own array."""
-        read = np.logical_not(self.stepper.diverged, out=self._read)
         active = self._all if members is None else np.asarray(members, dtype=np.bool_)
-        live = read if members is None else read & active
-        noise = self.noise.take(live)
-        self.sensors.read_with(self.stepper._x, noise, live, self.y)
-        _account(self.y, self.stepper._x, self.k, read, active, self._fresh, self.ref, self._consts, self.totals,
-                 self.fault, self.reward, self.terminated, self.truncated)
+        sensors, noise = self.sensors, self.noise
+        while _read_and_account(self.stepper._x, self.stepper.diverged, active, self._read, self._live,
+                                *noise.kernel_args(), sensors.filtered, sensors.levels, sensors.angle_step,
+                                sensors.blend, self.y, self.k, self._fresh, self.ref, self._consts, self.totals,
+                                self.fault, self.reward, self.terminated, self.truncated):
+            noise.refill_empty()
         if self.record:
-            rows = np.flatnonzero(live)
+            rows = np.flatnonzero(self._live)
             self._y_log[rows, np.minimum(self.k[rows], self.task.n_steps)] = self.y[rows]
-        if members is None:
-            self._fresh[:] = False
-        else:
-            self._fresh &= ~active
         return self.y
 
     def fault_text(self, i: int):

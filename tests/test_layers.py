@@ -22,7 +22,7 @@ LAYERS = {
               "muscle_sim.report"],
     "controllers": [f"controllers.{p.stem}" for p in sorted((ROOT / "controllers").glob("*.py"))
                     if p.stem != "__init__"],
-    "shells": ["muscle_sim.env", "muscle_sim.vector_env"],
+    "shells": ["muscle_sim.env", "muscle_sim.vector_env", "muscle_sim.sb3_vec_env"],
     "face": ["muscle_sim.cli", "muscle_sim.muscle_map", "muscle_sim.joint_view", "muscle_sim.calibration",
              "muscle_sim.sweep"],
 }

@@ -1,0 +1,159 @@
+"""Train an off-the-shelf RL agent (Stable-Baselines3 SAC or PPO) on the strike env and compare it with
+pamjoint's learner at equal numbers of trials.
+
+Needs the optional extra: ``pip install -e ".[rl]"`` (Stable-Baselines3 and PyTorch; install the
+CPU build of PyTorch first if you have no GPU). No observation normaliser is used: the env's
+observations are scaled already. Usage::
+
+    python examples/train_sb3.py --trials 300 --out runs/rl-example.json
+
+One trial is one episode (one strike of ``task.trial_length``). The agent trains on
+``--envs`` members of the native vector env (through :mod:`muscle_sim.sb3_vec_env`); after every
+``--eval-every`` trials of experience its deterministic policy runs one evaluation episode on a
+fixed seed. The learner (``pamjoint tune``, norm-optimal ILC on the prior) runs ``--tune-trials``
+trials on the same config; its profile of each trial is replayed in the env on the same
+evaluation seed, so both are scored by the env's return and its RMS tracking error.
+"""
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+
+ROOT = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(ROOT))
+
+from controllers.base import PressureProfile  # noqa: E402
+from controllers.feedforward import ReplayProfile  # noqa: E402
+from controllers.tuning import tune  # noqa: E402
+from muscle_sim.env import FlipperStrikeEnv  # noqa: E402
+from muscle_sim.records import write_json_atomic  # noqa: E402
+from muscle_sim.simulation import Setup  # noqa: E402
+
+EVAL_SEED = 12345
+
+
+def episode(env: FlipperStrikeEnv, act) -> dict:
+    """One evaluation episode on the fixed seed; ``act(obs, k)`` gives the action."""
+    obs, _ = env.reset(seed=EVAL_SEED)
+    total, k = 0.0, 0
+    while True:
+        obs, reward, terminated, truncated, info = env.step(act(obs, k))
+        total += reward
+        k += 1
+        if terminated or truncated:
+            m = info["metrics"]
+            return {"return": total, "rms_error_deg": m["rms_error_deg"], "fault": m["fault"],
+                    "strike_angle_error_deg": m["strike_angle_error_deg"],
+                    "strike_speed_error_pct": m["strike_speed_error_pct"]}
+
+
+def replay_actions(env: FlipperStrikeEnv, profile):
+    """A pressure profile as env actions (commands over the rated pressure onto [-1, 1])."""
+    controller = ReplayProfile(profile)
+    controller.reset(env.setup)
+    half = 0.5 * env.setup.rated_pressure
+
+    def act(obs, k):
+        u = controller.command(k, k * env.setup.task.dt, None)
+        return (np.asarray(u, dtype=float) / half - 1.0).astype(np.float32)
+    return act
+
+
+def learner_curve(config: str, trials: int, seed: int) -> list:
+    setup = Setup.from_config(config)
+    env = FlipperStrikeEnv(config)
+    curve = []
+    with tempfile.TemporaryDirectory() as tmp:
+        tune(setup, "norm-optimal", trials, seed, Path(tmp))
+        for i in range(trials):
+            profile = PressureProfile.read_csv(Path(tmp) / "profiles" / f"profile-{i:04d}.csv")
+            curve.append({"trials": i + 1, **episode(env, replay_actions(env, profile))})
+    return curve
+
+
+def agent_curve(config: str, trials: int, envs: int, every: int, seed: int, algo: str) -> list:
+    from stable_baselines3 import PPO, SAC
+    from stable_baselines3.common.callbacks import BaseCallback
+
+    from muscle_sim.sb3_vec_env import StrikeVecEnv
+
+    venv = StrikeVecEnv(envs, config)
+    venv.seed(seed)
+    steps_per_trial = venv.venv.setup.task.n_steps
+    if algo == "ppo":
+        model = PPO("MlpPolicy", venv, n_steps=steps_per_trial, batch_size=steps_per_trial, learning_rate=3e-4,
+                    gamma=0.99, gae_lambda=0.95, n_epochs=10, seed=seed, device="cpu", verbose=0)
+    else:
+        # one gradient step per env step of each member (train_freq 1, gradient_steps = members)
+        model = SAC("MlpPolicy", venv, learning_rate=3e-4, buffer_size=200_000, learning_starts=2 * steps_per_trial,
+                    batch_size=256, gamma=0.99, train_freq=1, gradient_steps=1, seed=seed, device="cpu", verbose=0)
+    env = FlipperStrikeEnv(config)
+    curve = []
+
+    def evaluate(done_trials):
+        curve.append({"trials": done_trials, **episode(env, lambda obs, k: model.predict(obs, deterministic=True)[0])})
+        print(f"agent after {done_trials:4d} trials: return {curve[-1]['return']:9.2f}, "
+              f"RMS {curve[-1]['rms_error_deg']:6.2f} deg", flush=True)
+
+    class Trials(BaseCallback):
+        def __init__(self):
+            super().__init__()
+            self.trials, self.next_eval = 0, every
+
+        def _on_step(self) -> bool:
+            self.trials += int(np.sum(self.locals["dones"]))
+            if self.trials >= self.next_eval:
+                evaluate(self.trials)
+                self.next_eval += every
+            return self.trials < trials
+
+    evaluate(0)
+    model.learn(total_timesteps=10 ** 9, callback=Trials())
+    return curve
+
+
+def main(argv=None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
+    ap.add_argument("--config", default=str(ROOT / "configs" / "flipper.yaml"))
+    ap.add_argument("--algo", choices=("sac", "ppo"), default="sac", help="Stable-Baselines3 algorithm")
+    ap.add_argument("--trials", type=int, default=300, help="training trials (episodes) of the agent")
+    ap.add_argument("--envs", type=int, default=4, help="members of the vector env the agent trains on")
+    ap.add_argument("--eval-every", type=int, default=20, help="evaluate the agent every this many trials")
+    ap.add_argument("--tune-trials", type=int, default=12, help="trials of the learner")
+    ap.add_argument("--seed", type=int, default=1)
+    ap.add_argument("--out", default="runs/rl-example.json")
+    args = ap.parse_args(argv)
+    for name in ("trials", "envs", "eval_every", "tune_trials"):
+        if getattr(args, name) < 1:
+            ap.error(f"--{name.replace('_', '-')}: {getattr(args, name)} is not allowed; must be >= 1")
+    start = time.perf_counter()
+    learner = learner_curve(args.config, args.tune_trials, args.seed)
+    tune_s = time.perf_counter() - start
+    for r in learner:
+        print(f"learner after {r['trials']:4d} trials: return {r['return']:9.2f}, RMS {r['rms_error_deg']:6.2f} deg")
+    start = time.perf_counter()
+    agent = agent_curve(args.config, args.trials, args.envs, args.eval_every, args.seed, args.algo)
+    agent_s = time.perf_counter() - start
+    at_equal = [a for a in agent if a["trials"] <= args.tune_trials][-1]
+    result = {"config": args.config, "seed": args.seed, "eval_seed": EVAL_SEED, "agent": f"stable-baselines3 {args.algo.upper()}",
+              "observation_normaliser": False, "learner": learner, "agent_curve": agent,
+              "learner_wall_s": tune_s, "agent_wall_s": agent_s,
+              "at_equal_trials": {"trials": args.tune_trials, "learner": learner[-1], "agent": at_equal},
+              "agent_first_return": agent[0]["return"], "agent_best_return": max(a["return"] for a in agent),
+              "agent_last_return": agent[-1]["return"]}
+    write_json_atomic(Path(args.out), result)
+    print(f"after {args.tune_trials} trials: learner RMS {learner[-1]['rms_error_deg']:.3f} deg (return "
+          f"{learner[-1]['return']:.2f}); agent RMS {at_equal['rms_error_deg']:.2f} deg (return {at_equal['return']:.2f})")
+    print(f"agent return {agent[0]['return']:.2f} untrained -> {agent[-1]['return']:.2f} after {agent[-1]['trials']} "
+          f"trials (best {result['agent_best_return']:.2f}); wrote {args.out}")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
