@@ -378,8 +378,7 @@ def cmd_learn_step(args) -> int:
               "safety": safety.GENERAL + " " + safety.HARDWARE}
     from .tasks import strike_metrics
 
-    m = strike_metrics(setup.task, log.measured[:, 0], log.measured[:, 1],
-                       log.measured[:, 2:4][np.isfinite(log.measured[:, 2:4])])
+    m = strike_metrics(setup.task, log.measured[:, 0], log.measured[:, 1], log.measured[:, 2:4])
     report["logged_trial"] = {k: m[k] for k in ("rms_error_deg", "strike_angle_error_deg", "strike_speed_error_pct")}
     report["log_notes"] = log.metadata.get("read_notes", [])
     if args.json:

@@ -154,7 +154,10 @@ def fold_sample(k, angle, rate, p_a, p_b, ref_angle, dt, home, tolerance, turn_t
     after the turn outside the settling band of home, the strike errors at the strike sample."""
     err = angle - ref_angle
     row[SUM_SQ] += err * err
-    row[PEAK] = max(row[PEAK], p_a, p_b)
+    if p_a == p_a:                      # a log without pressure channels holds NaN there
+        row[PEAK] = max(row[PEAK], p_a)
+    if p_b == p_b:
+        row[PEAK] = max(row[PEAK], p_b)
     if abs(angle - home) > tolerance and k * dt >= turn_time:
         row[LAST_OUT] = k
     if k == strike_index:
@@ -193,7 +196,7 @@ def metrics_from_totals(task: StrikeTask, row, fault: str | None = None) -> dict
         "rms_error_deg": math.degrees(math.sqrt(sum_sq / n)) if n else math.nan,
         "strike_angle_error_deg": None if strike_err != strike_err else strike_err,
         "strike_speed_error_pct": None if speed_err != speed_err else speed_err,
-        "peak_pressure_kpa": peak / 1e3 if n else 0.0,
+        "peak_pressure_kpa": peak / 1e3 if peak > -math.inf else None,
         "settle_time_s": settle,
         "settled": fault is None and settle is not None and settle <= task.settle_time + 1e-12,
         "fault": fault,
@@ -204,7 +207,8 @@ def strike_metrics(task: StrikeTask, angle, rate, pressures, fault: str | None =
     """Metrics of one logged trial from sampled signals (k dt, k = 0..n-1).
 
     Returns ``rms_error_deg`` (swing tracking), ``strike_angle_error_deg``,
-    ``strike_speed_error_pct`` (None if the log ends before the strike), ``peak_pressure_kpa``,
+    ``strike_speed_error_pct`` (None if the log ends before the strike), ``peak_pressure_kpa``
+    (None without pressure readings; NaN samples are skipped),
     ``settle_time_s`` (:func:`metrics_from_totals`), ``settled`` and ``fault`` (as given).
     """
     angle = np.ascontiguousarray(angle, dtype=float)
