@@ -78,8 +78,11 @@ def learner_curve(config: str, trials: int, seed: int) -> list:
 
 
 def agent_curve(config: str, trials: int, envs: int, every: int, seed: int, algo: str) -> list:
+    import torch
     from stable_baselines3 import PPO, SAC
     from stable_baselines3.common.callbacks import BaseCallback
+
+    torch.set_num_threads(1)          # small networks: one thread is fastest and leaves the other core free
 
     from muscle_sim.sb3_vec_env import StrikeVecEnv
 
