@@ -135,3 +135,34 @@ def test_each_shortfall_of_a_plan_is_named_also_between_the_optimiser_samples():
         spoilt[which][index] = value
         found = _misses(spoilt["theta"], spoilt["traj"], learner, task, late, 1e5, K)
         assert len(found) == 1 and found[0].startswith(name), (name, found)
+
+
+@pytest.mark.parametrize("scenario", ["fast-strike", "finger"])
+def test_a_shipped_scenario_is_planned_or_its_fallback_reaches_what_the_report_says(tmp_path, capsys, scenario):
+    # reference: the written profile.csv simulated afresh on the prior from home (integrate.simulate
+    # from simulation.home_pressures, not the planner's own swing); tolerances: the planner's stated
+    # ones. Either the plan converged and the prior meets the strike within every limit, or it reports
+    # an out-of-reach strike whose fallback reaches, at the strike angle, the speed the report claims
+    from controllers.base import PressureProfile
+
+    config = DEMO.parent / "scenarios" / f"{scenario}.yaml"
+    setup = Setup.from_config(config)
+    prior, task = setup.prior, setup.task
+    assert cli.main(["plan", str(config), "--out", str(tmp_path / "p"), "--json"]) == 0
+    report = json.loads(capsys.readouterr().out)
+    profile = PressureProfile.read_csv(tmp_path / "p" / "profile.csv")
+    hold = np.array(home_pressures(prior, task))
+    traj = simulate(prior, initial_state(prior, task.home_angle, hold), profile.commands, task.dt,
+                    task.n_substeps, u_before=hold)
+    k = task.strike_index
+    assert abs(math.radians(report["strike_angle_deg"]) - traj[k, 0]) <= STRIKE_ANGLE_TOLERANCE
+    assert abs(report["strike_speed_rad_s"] - traj[k, 1]) <= STRIKE_SPEED_TOLERANCE
+    if report["success"]:
+        assert report["status"] == 0 and report["iterations"] < report["iteration_limit"]
+        assert report["optimality"] <= OPTIMALITY_TOLERANCE
+        assert _meets_strike_within_limits(setup, profile)
+    else:
+        assert report["status"] == 2 and report["max_strike_speed_rad_s"] is not None, report["message"]
+        assert abs(traj[k, 0] - task.strike_angle) <= STRIKE_ANGLE_TOLERANCE
+        assert abs(report["max_strike_speed_rad_s"] - traj[k, 1]) <= STRIKE_SPEED_TOLERANCE
+        assert traj[k, 1] < task.strike_speed - STRIKE_SPEED_TOLERANCE
