@@ -28,8 +28,9 @@ first-order (KKT) residual of the full problem, with multipliers fitted by bound
 :data:`OPTIMALITY_TOLERANCE`, and the profile, simulated on the prior, meets the strike and every
 limit at every sample. The limits with nonzero multipliers are the active ones, each with what
 relaxing it by one unit is worth (the multiplier). When the strike is out of reach the fallback
-problem maximises the strike speed at the strike angle; its profile is simulated on the prior and
-reported only with what that simulation reaches.
+problem maximises the strike speed at the strike angle, started inside the limits (where the main
+problem stopped, if it kept them, else the model-only feedforward of a slower strike); its
+profile is simulated on the prior and reported only with what that simulation reaches.
 """
 from __future__ import annotations
 
@@ -503,7 +504,13 @@ def plan(setup, objective: str = "peak-pressure", max_pressure_rate: float | Non
     if misses or not sol.converged:
         fast = problem("fastest")
         best = None
-        for start in (theta, theta0):          # from where the main problem stopped, and afresh
+        kept = _kept_start(fast, setup, learner, rate_step, K, theta)
+        # from a start that keeps every limit at the strike angle, else from where the main
+        # problem stopped and afresh
+        starts = [theta, theta0]
+        if kept is not None:
+            starts = [kept] + [t for t in starts if t is not kept]
+        for start in starts:
             fsol = fast.solve(fast.z_of(start), max_iterations)
             report = _verify_fallback(fast, fsol, learner, task, rate_step, K)
             if report["verified"] and (best is None or report["strike_speed"] > best[1]["strike_speed"]):
@@ -563,6 +570,47 @@ def plan(setup, objective: str = "peak-pressure", max_pressure_rate: float | Non
                       home_pressures=tuple(float(p) for p in hold), home_pressure=float(task.home_pressure),
                       binding_limit=binding, fallback=fb_out, optimiser_message=shown_sol.message,
                       max_iterations=int(max_iterations))
+
+
+#: Ratio between the strike speeds whose model-only feedforward :func:`_kept_start` tries.
+START_SPEED_RATIO = 0.75
+
+
+def _kept_start(problem, setup, learner, rate_step, K, stopped):
+    """A start for the fallback that keeps every limit and the strike angle on the prior (only the
+    strike speed may miss), or None: where the main problem stopped, else the model-only
+    feedforward of the fastest of the strikes ``v START_SPEED_RATIO^n`` slower than the task's
+    (down to the slowest its reference allows, a swing from t = 0) whose fit on the planning
+    knots does. SLSQP started outside the limits on a strike out of reach wanders off (the
+    stopped main problem of a 40 rad/s demo strike swings past both stops); from inside them
+    it climbs to the fastest strike they allow."""
+    import dataclasses
+
+    from .feedforward import model_only_profile
+
+    task = setup.task
+    late = _late(task)
+
+    def keeps(theta) -> bool:
+        theta = problem.theta(problem.z_of(theta))
+        traj = problem.model.swing(theta)
+        return not [m for m in _misses(theta, traj, learner, task, late, rate_step, K)
+                    if not m.startswith("strike speed")]
+
+    if keeps(stopped):
+        return stopped
+    slowest = 2.0 * abs(task.strike_angle - task.home_angle) / task.strike_time
+    v = task.strike_speed * START_SPEED_RATIO
+    while v >= slowest:
+        slower = dataclasses.replace(setup, task=dataclasses.replace(task, strike_speed=v))
+        try:
+            theta = np.asarray(learner.initial_state(model_only_profile(slower)).theta)
+        except ValueError:                   # a muscle cannot give that swing's torque
+            theta = None
+        if theta is not None and keeps(theta):
+            return theta
+        v *= START_SPEED_RATIO
+    return None
 
 
 def _late(task) -> np.ndarray:
