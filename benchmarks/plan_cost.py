@@ -211,6 +211,7 @@ def main(argv=None) -> dict:
         parser.error(f"--repeats: {args.repeats} is not allowed; must be >= 1")
     repeats = 1 if args.quick else args.repeats
     scenarios = SCENARIOS[:3] if args.quick else SCENARIOS
+    load_at_start = os.getloadavg()
     demo = Setup.from_config(DEMO)
     method = demo.config.get("learning.method")
     fast = yaml.safe_load(DEMO.read_text())
@@ -243,7 +244,8 @@ def main(argv=None) -> dict:
              "every_shipped_scenario_converges_or_reports_a_confirmed_fallback":
                  all(r["truthful"] and r["outcome"] in ("converged", "infeasible, fallback reported") for r in shipped)}
     out = {"benchmark": "plan_cost", "python": platform.python_version(), "numpy": np.__version__,
-           "machine": platform.machine(), "cores": os.cpu_count(), "load_average_at_end": os.getloadavg(),
+           "machine": platform.machine(), "cores": os.cpu_count(),
+           "load_average_at_start": load_at_start, "load_average_at_end": os.getloadavg(),
            "quick": bool(args.quick), "seed": SEED, "trials": TRIALS,
            "timing_note": f"plan and a {TRIALS}-trial tune of the demo (library functions, tune writing its run "
                           f"folder), alternately, {repeats} times after one untimed plan; one process",
