@@ -559,7 +559,8 @@ def plan(setup, objective: str = "peak-pressure", max_pressure_rate: float | Non
     fb_out = None
     if fallback is not None:
         fb_out = {k: v for k, v in fallback.items() if k not in ("theta", "solve", "problem")}
-    cost_value = float(main.cost(main.z_of(theta))) if status < 2 else float("nan")
+    # the stated objective of the profile itself [bar], without the pull toward home
+    cost_value = float(_objective_value(objective, theta)) if status < 2 else float("nan")
     return PlanResult(status == 0, status, msg, misses, profile, traj_shown[:, 0].copy(),
                       float(traj_shown[task.strike_index, 0]), float(traj_shown[task.strike_index, 1]), objective,
                       cost_value, [a["text"] for a in active],
@@ -611,6 +612,13 @@ def _kept_start(problem, setup, learner, rate_step, K, stopped):
             return theta
         v *= START_SPEED_RATIO
     return None
+
+
+def _objective_value(objective: str, theta) -> float:
+    """Peak or mean of the profile's knots [bar] (the hat basis interpolates linearly between
+    knots, so the peak knot is the peak command and the knot mean weighs as the cost does)."""
+    theta = np.asarray(theta, dtype=float)
+    return float(theta.max() if objective == "peak-pressure" else theta.mean()) / _BAR
 
 
 def _late(task) -> np.ndarray:
