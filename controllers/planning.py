@@ -427,8 +427,9 @@ class _Problem:
         (stationarity) and ``max lambda_i c_i`` over the active rows (complementarity, Nocedal &
         Wright 2006, (12.34)), with multipliers fitted by bounded least squares on the equalities
         (free sign), the inequality rows within :data:`FEASIBILITY_TOLERANCE` of their limit
-        (>= 0) and the active bounds (>= 0); returns ``(residual, {family: [(index, multiplier)]})``. Families: 0/1 angle low/high, 2/3 settling band, 4 peak, 5/6
-        rate, "low"/"high" pressure bounds of knot i."""
+        (>= 0) and the active bounds (>= 0); returns ``(residual, {family: [(index,
+        multiplier)]})``. Families: 0/1 angle low/high, 2/3 settling band, 4 peak, 5/6 rate,
+        "low"/"high" pressure bounds of knot i."""
         from scipy.optimize import lsq_linear
 
         g = self.cost_grad(z)
