@@ -10,9 +10,11 @@ pressures (:data:`REGULARISATION`), which makes the optimum unique where the cos
 knots free. Equalities: strike angle [deg] and speed [rad/s] at the strike sample. Inequalities,
 in degrees and bar: the angle inside the stops less ``learning.angle_margin`` at every sample,
 within the settling band of home from ``task.settle_time``, and the knot-to-knot pressure rate.
-Rows far from their limit (:data:`SCREEN_ANGLE`, :data:`SCREEN_PRESSURE`) are left out of a
-round and checked after it; a round that ends with such a row violated is repeated with it
-(constraint screening), so the rows the optimiser sees are few and the limits hold at every sample.
+Angle rows far from their limit (:data:`SCREEN_ANGLE`) are left out of a round and checked after
+every iterate; a round stopped by such a row violated is repeated with it from the last iterate
+that kept every row (constraint screening), so the rows the optimiser sees are few and the limits
+hold at every sample. The linear rows (peak epigraph, pressure rate) always take part. The start
+is the least-squares fit of the model-only feedforward on the planning knots.
 
 Gradients are the prior's own: the trajectory is simulated by the compiled kernel and linearised
 along itself (:func:`controllers.sensitivity.linearise`, one batched call per knot vector), and
@@ -26,8 +28,9 @@ first-order (KKT) residual of the full problem, with multipliers fitted by bound
 :data:`OPTIMALITY_TOLERANCE`, and the profile, simulated on the prior, meets the strike and every
 limit at every sample. The limits with nonzero multipliers are the active ones, each with what
 relaxing it by one unit is worth (the multiplier). When the strike is out of reach the fallback
-problem maximises the strike speed at the strike angle; its profile is simulated on the prior and
-reported only with what that simulation reaches.
+problem maximises the strike speed at the strike angle, started inside the limits (where the main
+problem stopped, if it kept them, else the model-only feedforward of a slower strike); its
+profile is simulated on the prior and reported only with what that simulation reaches.
 """
 from __future__ import annotations
 
@@ -59,6 +62,11 @@ PRESSURE_TOLERANCE = 100.0
 #: fitted multipliers times the constraint gradients), per bar of a knot, in units of the cost
 #: (bar for peak and mean pressure; the strike speed over its target for the fallback).
 OPTIMALITY_TOLERANCE = 1e-4
+#: Feasibility in the optimality test [deg, rad/s, bar]: equalities within it, inequality rows no
+#: further than it past their limit, and rows within it of their limit counted as active (their
+#: multiplier times their slack, the complementarity, enters the residual). SLSQP holds nearly
+#: active rows of a light paddle's late swing a few 1e-5 deg off their limit while it iterates.
+FEASIBILITY_TOLERANCE = 1e-4
 #: Weight of the pull toward the home pressures: the cost gains ``R/2 mean(((theta -
 #: theta_home) / 1 bar)^2)``, at most 1.8 bar for knots 6 bar away (derived).
 REGULARISATION = 1e-1
@@ -68,9 +76,8 @@ FALLBACK_REGULARISATION = 1e-4
 #: knots between them interpolated linearly (SLSQP's subproblem grows with the cube of the
 #: variables; the prior's pressure lag, 15 ms on the demo, smooths finer detail anyway).
 PLAN_KNOT_SPACING = 0.016
-#: Inequality rows with more slack than this at the start of a round are left out of it.
+#: Angle rows with more slack than this at the start of a round are left out of it.
 SCREEN_ANGLE = math.radians(10.0)
-SCREEN_PRESSURE = 0.5e5
 #: Screening rounds before the plan gives up on closing the row set.
 MAX_ROUNDS = 6
 #: SLSQP's accuracy goal (on the cost and on the constraint values in deg, rad/s and bar).
@@ -211,9 +218,15 @@ class _Grid:
         self.D = D
 
     def coarse(self, theta) -> np.ndarray:
-        """Planning knot values [bar] of learner knots ``theta`` [Pa] (their values at the planning knots)."""
-        theta = np.asarray(theta, dtype=float).reshape(2, self.K)
-        return (theta[:, self.sel] / _BAR).reshape(-1)
+        """Planning knot values [bar] closest to learner knots ``theta`` [Pa] in least squares, the
+        pinned knots at home (exact for a profile on the planning grid). Sampling ``theta`` at the
+        planning knots instead drops the detail between them, which on a fast strike moves the
+        prior's swing by several degrees and past the angle limits."""
+        theta = np.asarray(theta, dtype=float).reshape(-1) / _BAR
+        c = self.home.copy()
+        rhs = theta - self.T[:, ~self.free] @ c[~self.free]
+        c[self.free] = np.linalg.lstsq(self.T[:, self.free], rhs, rcond=None)[0]
+        return c
 
 
 class _Problem:
@@ -341,7 +354,9 @@ class _Problem:
 
     @staticmethod
     def _screen(rows: _Rows) -> np.ndarray:
-        limit = np.where(rows.family <= 3, SCREEN_ANGLE / _DEG, SCREEN_PRESSURE / _BAR)
+        # the linear rows (peak epigraph, pressure rate) cost no simulation and always take part:
+        # without them one step can drop the peak variable below knots it no longer sees
+        limit = np.where(rows.family <= 3, SCREEN_ANGLE / _DEG, np.inf)
         return rows.values < limit
 
     # -- solving -------------------------------------------------------------------------------
@@ -358,16 +373,20 @@ class _Problem:
                 cons.append({"type": "ineq", "fun": lambda v, i=idx: self.rows(v, False).values[i],
                              "jac": lambda v, i=idx: self.rows(v, True).jac[i]})
             left = max(1, max_iterations - iterations)
-            verdict = {}
+            verdict = {"kept": z}
 
             def check(xk, chosen=chosen, verdict=verdict):
                 # stop the round as soon as the full problem's first-order conditions hold, or a
-                # row left out of it is violated (then the round is repeated with it)
+                # row left out of it is violated (then the round is repeated with it, from the last
+                # iterate that kept every row: the violating one can lie far off, where the
+                # linearisation the next round starts from no longer describes the swing)
                 x = np.clip(xk, self.lb, self.ub)
                 full = self.rows(x, False)
-                if (~chosen & (full.values < 0.0)).any():
-                    verdict["missed"] = True
+                missed = ~chosen & (full.values < 0.0)
+                if missed.any():
+                    verdict["missed"] = missed
                     raise StopIteration
+                verdict["kept"] = x
                 if self.feasible(x, full, chosen):
                     kkt = self.kkt(x, chosen)
                     if kkt[0] <= OPTIMALITY_TOLERANCE:
@@ -383,6 +402,7 @@ class _Problem:
             if not missed.any() or iterations >= max_iterations:
                 break
             chosen |= self._screen(full) | missed
+            z = verdict["kept"]
         full = self.rows(z, False)
         optimality, multipliers = self.kkt(z, chosen)
         closed = not (~chosen & (full.values < 0.0)).any()
@@ -397,20 +417,24 @@ class _Problem:
         return _Solve(z, converged, optimality, iterations, message, multipliers)
 
     def feasible(self, z, full, chosen) -> bool:
-        """Equalities within 1e-6 (deg, rad/s) and every inequality row within 1e-6 (deg, bar)."""
-        return bool(np.all(np.abs(self.equalities(z)) <= 1e-6) and np.all(full.values >= -1e-6))
+        """Equalities within :data:`FEASIBILITY_TOLERANCE` (deg, rad/s) and every inequality row
+        no further than it past its limit (deg, bar)."""
+        tol = FEASIBILITY_TOLERANCE
+        return bool(np.all(np.abs(self.equalities(z)) <= tol) and np.all(full.values >= -tol))
 
     def kkt(self, z, chosen):
-        """First-order residual ``max |grad f - J_a^T lambda - nu|`` at ``z`` with multipliers
-        fitted by bounded least squares on the equalities (free sign), the inequality rows within
-        1e-6 of their limit (>= 0) and the active bounds (>= 0); returns ``(residual, {family:
-        [(index, multiplier)]})``. Families: 0/1 angle low/high, 2/3 settling band, 4 peak, 5/6
-        rate, "low"/"high" pressure bounds of knot i."""
+        """First-order residual at ``z``: the larger of ``max |grad f - J_a^T lambda - nu|``
+        (stationarity) and ``max lambda_i c_i`` over the active rows (complementarity, Nocedal &
+        Wright 2006, (12.34)), with multipliers fitted by bounded least squares on the equalities
+        (free sign), the inequality rows within :data:`FEASIBILITY_TOLERANCE` of their limit
+        (>= 0) and the active bounds (>= 0); returns ``(residual, {family: [(index,
+        multiplier)]})``. Families: 0/1 angle low/high, 2/3 settling band, 4 peak, 5/6 rate,
+        "low"/"high" pressure bounds of knot i."""
         from scipy.optimize import lsq_linear
 
         g = self.cost_grad(z)
         rows = self.rows(z, True)
-        act = np.nonzero(chosen & (rows.values <= 1e-6))[0]
+        act = np.nonzero(chosen & (rows.values <= FEASIBILITY_TOLERANCE))[0]
         Je = self.equalities_jac(z)
         at_low = np.nonzero(z <= self.lb + 1e-9)[0]
         at_high = np.nonzero(z >= self.ub - 1e-9)[0]
@@ -420,11 +444,13 @@ class _Problem:
         A = np.hstack(cols)
         ne = Je.shape[0]
         low = np.concatenate([np.full(ne, -np.inf), np.zeros(A.shape[1] - ne)])
-        fit = lsq_linear(A, g, bounds=(low, np.full(A.shape[1], np.inf)), method="bvls")
-        if not np.all(np.isfinite(A)):
+        if not (np.all(np.isfinite(A)) and np.all(np.isfinite(g))):
             return math.inf, {}
-        lam = fit.x
+        lam = lsq_linear(A, g, bounds=(low, np.full(A.shape[1], np.inf)), method="bvls").x
         residual = float(np.max(np.abs(g - A @ lam))) if g.size else 0.0
+        if act.size:
+            slack = np.maximum(rows.values[act], 0.0)
+            residual = max(residual, float(np.max(lam[ne:ne + act.size] * slack)))
         out = {}
         pos = ne
         for r in act:
@@ -479,7 +505,13 @@ def plan(setup, objective: str = "peak-pressure", max_pressure_rate: float | Non
     if misses or not sol.converged:
         fast = problem("fastest")
         best = None
-        for start in (theta, theta0):          # from where the main problem stopped, and afresh
+        kept = _kept_start(fast, setup, learner, rate_step, K, theta)
+        # from a start that keeps every limit at the strike angle, else from where the main
+        # problem stopped and afresh
+        starts = [theta, theta0]
+        if kept is not None:
+            starts = [kept] + [t for t in starts if t is not kept]
+        for start in starts:
             fsol = fast.solve(fast.z_of(start), max_iterations)
             report = _verify_fallback(fast, fsol, learner, task, rate_step, K)
             if report["verified"] and (best is None or report["strike_speed"] > best[1]["strike_speed"]):
@@ -528,7 +560,8 @@ def plan(setup, objective: str = "peak-pressure", max_pressure_rate: float | Non
     fb_out = None
     if fallback is not None:
         fb_out = {k: v for k, v in fallback.items() if k not in ("theta", "solve", "problem")}
-    cost_value = float(main.cost(main.z_of(theta))) if status < 2 else float("nan")
+    # the stated objective of the profile itself [bar], without the pull toward home
+    cost_value = float(_objective_value(objective, theta)) if status < 2 else float("nan")
     return PlanResult(status == 0, status, msg, misses, profile, traj_shown[:, 0].copy(),
                       float(traj_shown[task.strike_index, 0]), float(traj_shown[task.strike_index, 1]), objective,
                       cost_value, [a["text"] for a in active],
@@ -539,6 +572,54 @@ def plan(setup, objective: str = "peak-pressure", max_pressure_rate: float | Non
                       home_pressures=tuple(float(p) for p in hold), home_pressure=float(task.home_pressure),
                       binding_limit=binding, fallback=fb_out, optimiser_message=shown_sol.message,
                       max_iterations=int(max_iterations))
+
+
+#: Ratio between the strike speeds whose model-only feedforward :func:`_kept_start` tries.
+START_SPEED_RATIO = 0.75
+
+
+def _kept_start(problem, setup, learner, rate_step, K, stopped):
+    """A start for the fallback that keeps every limit and the strike angle on the prior (only the
+    strike speed may miss), or None: where the main problem stopped, else the model-only
+    feedforward of the fastest of the strikes ``v START_SPEED_RATIO^n`` slower than the task's
+    (down to the slowest its reference allows, a swing from t = 0) whose fit on the planning
+    knots does. SLSQP started outside the limits on a strike out of reach wanders off (the
+    stopped main problem of a 40 rad/s demo strike swings past both stops); from inside them
+    it climbs to the fastest strike they allow."""
+    import dataclasses
+
+    from .feedforward import model_only_profile
+
+    task = setup.task
+    late = _late(task)
+
+    def keeps(theta) -> bool:
+        theta = problem.theta(problem.z_of(theta))
+        traj = problem.model.swing(theta)
+        return not [m for m in _misses(theta, traj, learner, task, late, rate_step, K)
+                    if not m.startswith("strike speed")]
+
+    if keeps(stopped):
+        return stopped
+    slowest = 2.0 * abs(task.strike_angle - task.home_angle) / task.strike_time
+    v = task.strike_speed * START_SPEED_RATIO
+    while v >= slowest:
+        slower = dataclasses.replace(setup, task=dataclasses.replace(task, strike_speed=v))
+        try:
+            theta = np.asarray(learner.initial_state(model_only_profile(slower)).theta)
+        except ValueError:                   # a muscle cannot give that swing's torque
+            theta = None
+        if theta is not None and keeps(theta):
+            return theta
+        v *= START_SPEED_RATIO
+    return None
+
+
+def _objective_value(objective: str, theta) -> float:
+    """Peak or mean of the profile's knots [bar] (the hat basis interpolates linearly between
+    knots, so the peak knot is the peak command and the knot mean weighs as the cost does)."""
+    theta = np.asarray(theta, dtype=float)
+    return float(theta.max() if objective == "peak-pressure" else theta.mean()) / _BAR
 
 
 def _late(task) -> np.ndarray:

@@ -7,13 +7,14 @@ from conftest import DEMO
 
 
 def test_a_plan_stopped_at_its_iteration_limit_is_not_a_success(tmp_path, capsys):
-    # reference: scipy's SLSQP stops with status 9 ("Iteration limit reached") after 5 of the
-    # ~100 iterations the demo needs to converge (derived: the converged plan in test_planning)
-    assert cli.main(["plan", str(DEMO), "--iterations", "5", "--out", str(tmp_path / "p"), "--json"]) == 0
+    # reference: scipy's SLSQP stops with status 9 ("Iteration limit reached") after 10 of the
+    # ~75 iterations the demo needs to converge (derived: the converged plan in test_planning);
+    # by then the profile meets the strike within the limits (status 1), at a cost not shown least
+    assert cli.main(["plan", str(DEMO), "--iterations", "10", "--out", str(tmp_path / "p"), "--json"]) == 0
     report = json.loads(capsys.readouterr().out)
     assert report["success"] is False and report["converged"] is False and report["status"] == 1
     assert report["message"].startswith("not converged") and "Iteration limit reached" in report["message"]
-    assert "5 of 5 iterations" in report["message"] and report["iteration_limit"] == 5
+    assert "10 of 10 iterations" in report["message"] and report["iteration_limit"] == 10
     assert isinstance(report["active_limits"], list)
     saved = json.loads((tmp_path / "p" / "plan.json").read_text())
     assert saved["success"] is False and saved["converged"] is False

@@ -32,7 +32,8 @@ def test_plan_meets_the_strike_within_the_limits(tmp_path):
     assert np.max(np.abs(np.diff(knots, axis=0))) <= 150e5 * 0.008 + 1e3
     margin = setup.prior.joint.upper_stop - math.radians(3.0)
     assert np.max(np.abs(res.swing)) <= margin + 1e-3
-    assert res.objective_value <= 6.0
+    # reference: the profile's own peak command (derived); the pull toward home is not part of it
+    assert res.objective_value == pytest.approx(c.max() / 1e5, abs=1e-9)
 
 
 def test_an_impossible_strike_is_reported_with_its_shortfall(tmp_path, capsys):
@@ -42,15 +43,14 @@ def test_an_impossible_strike_is_reported_with_its_shortfall(tmp_path, capsys):
     cfg.write_text(yaml.safe_dump(raw))
     assert cli.main(["plan", str(cfg), "--out", str(tmp_path / "p"), "--json"]) == 0
     report = json.loads(capsys.readouterr().out)
-    # with 25 iterations the fallback may not be shown fastest (status 3), but it is verified
-    assert report["success"] is False and report["status"] in (2, 3) and report["misses"]
-    # never a strike at the wrong angle: a reported fallback was simulated on the prior and
-    # reaches the strike angle (planner tolerance, 1e-3 rad); without one no speed is claimed
-    if report["max_strike_speed_rad_s"] is not None:
-        assert 0 < report["max_strike_speed_rad_s"] < 40.0
-        assert abs(math.radians(report["strike_angle_deg"]) - math.radians(20.0)) <= STRIKE_ANGLE_TOLERANCE
-    else:
-        assert "no profile reaching the strike angle" in report["message"]
+    # the fallback starts inside the limits (the model-only feedforward of a slower strike), so
+    # it converges to the fastest strike they allow (status 2) and says what it reaches
+    assert report["success"] is False and report["status"] == 2 and report["misses"]
+    assert "the fastest strike the limits allow" in report["message"]
+    # never a strike at the wrong angle: the written profile, simulated afresh on the prior,
+    # reaches the strike angle and the claimed speed (planner tolerances)
+    assert 0 < report["max_strike_speed_rad_s"] < 40.0
+    _check_report_on_the_prior(Setup.from_config(raw), tmp_path / "p", report)
     assert report["suggestions"] and "reduced pressure" in report["safety"]
     assert (tmp_path / "p" / "profile.csv").exists() and (tmp_path / "p" / "plan.png").exists()
     assert "out of reach" in check_report(tmp_path / "p")
@@ -61,9 +61,10 @@ def test_bad_plan_flags_exit_2(tmp_path):
     assert cli.main(["plan", str(DEMO), "--iterations", "0", "--out", str(tmp_path)]) == 2
 
 
-def _meets_strike_within_limits(setup, profile) -> bool:
-    """Re-simulate a planned profile on the prior from home and check the strike and every limit
-    at every sample (the planner's definition of success, written out independently)."""
+def _meets_strike_within_limits(setup, profile, strike_speed=None) -> bool:
+    """Re-simulate a planned profile on the prior from home and check the strike (at
+    ``strike_speed`` [rad/s], default the task's) and every limit at every sample (the planner's
+    definition of success, written out independently)."""
     prior, task = setup.prior, setup.task
     hold = np.array(home_pressures(prior, task))
     traj = simulate(prior, initial_state(prior, task.home_angle, hold), profile.commands, task.dt,
@@ -76,7 +77,8 @@ def _meets_strike_within_limits(setup, profile) -> bool:
     p_high = min(setup.config.get("learning.max_pressure") or setup.rated_pressure, setup.rated_pressure)
     late = np.abs(q[t >= task.settle_time - 1e-12] - task.home_angle)
     return bool(abs(q[k] - task.strike_angle) <= STRIKE_ANGLE_TOLERANCE
-                and abs(traj[k, 1] - task.strike_speed) <= STRIKE_SPEED_TOLERANCE
+                and abs(traj[k, 1] - (task.strike_speed if strike_speed is None else strike_speed))
+                <= STRIKE_SPEED_TOLERANCE
                 and q.min() >= low - ANGLE_TOLERANCE and q.max() <= high + ANGLE_TOLERANCE
                 and np.all(late <= task.settle_tolerance + ANGLE_TOLERANCE)
                 and profile.commands.min() >= p_low - PRESSURE_TOLERANCE
@@ -135,3 +137,38 @@ def test_each_shortfall_of_a_plan_is_named_also_between_the_optimiser_samples():
         spoilt[which][index] = value
         found = _misses(spoilt["theta"], spoilt["traj"], learner, task, late, 1e5, K)
         assert len(found) == 1 and found[0].startswith(name), (name, found)
+
+
+@pytest.mark.parametrize("scenario", ["fast-strike", "finger"])
+def test_a_shipped_scenario_is_planned_or_its_fallback_reaches_what_the_report_says(tmp_path, capsys, scenario):
+    # reference: the written profile.csv simulated afresh on the prior from home (integrate.simulate
+    # from simulation.home_pressures, not the planner's own swing); tolerances: the planner's stated
+    # ones. Either the plan converged and the prior meets the strike within every limit, or it reports
+    # an out-of-reach strike whose fallback reaches, at the strike angle, the speed the report claims
+    config = DEMO.parent / "scenarios" / f"{scenario}.yaml"
+    assert cli.main(["plan", str(config), "--out", str(tmp_path / "p"), "--json"]) == 0
+    _check_report_on_the_prior(Setup.from_config(config), tmp_path / "p", json.loads(capsys.readouterr().out))
+
+
+def _check_report_on_the_prior(setup, folder, report) -> None:
+    """The plan folder's profile.csv simulated afresh on the prior from home reaches what the
+    report says: a converged plan the strike within every limit, a fallback its claimed speed at
+    the strike angle (and less than the task's)."""
+    from controllers.base import PressureProfile
+
+    prior, task = setup.prior, setup.task
+    profile = PressureProfile.read_csv(folder / "profile.csv")
+    hold = np.array(home_pressures(prior, task))
+    traj = simulate(prior, initial_state(prior, task.home_angle, hold), profile.commands, task.dt,
+                    task.n_substeps, u_before=hold)
+    k = task.strike_index
+    assert abs(math.radians(report["strike_angle_deg"]) - traj[k, 0]) <= STRIKE_ANGLE_TOLERANCE
+    assert abs(report["strike_speed_rad_s"] - traj[k, 1]) <= STRIKE_SPEED_TOLERANCE
+    if report["success"]:
+        assert report["status"] == 0 and report["iterations"] < report["iteration_limit"]
+        assert report["optimality"] <= OPTIMALITY_TOLERANCE
+        assert _meets_strike_within_limits(setup, profile)
+    else:
+        assert report["status"] == 2 and report["max_strike_speed_rad_s"] is not None, report["message"]
+        assert _meets_strike_within_limits(setup, profile, report["max_strike_speed_rad_s"])
+        assert traj[k, 1] < task.strike_speed - STRIKE_SPEED_TOLERANCE
