@@ -199,7 +199,7 @@ def main(argv=None) -> int:
     ap.add_argument("--from-scratch", action="store_true",
                     help="the agent's action is the whole command (default: a correction of the model-only "
                          "feedforward, residual policy learning)")
-    ap.add_argument("--out", default="runs/rl-example.json")
+    ap.add_argument("--out", default="runs/rl-example.json", help="result JSON (the README quotes examples/results/)")
     args = ap.parse_args(argv)
     for name in ("trials", "envs", "eval_every", "tune_trials"):
         if getattr(args, name) < 1:
