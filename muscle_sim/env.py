@@ -9,7 +9,7 @@ from gymnasium import spaces
 from .config import shipped_config
 from .simulation import Setup
 from .trial import (MAX_TRIAL, TrialBatch, actions_to_commands, check_trial,
-                    observation_bounds, observations_into)
+                    observation_bounds)
 
 DEMO_CONFIG = shipped_config("flipper.yaml")
 
@@ -83,15 +83,12 @@ class FlipperStrikeEnv(gym.Env):
             raise ValueError(f"render_mode: {render_mode!r} is not allowed; must be None or 'rgb_array'")
         self.render_mode = render_mode
         self.action_space = spaces.Box(-1.0, 1.0, (2,), dtype=np.float32)
-        low, high = observation_bounds(self.setup)
-        self.observation_space = spaces.Box(low, high, dtype=np.float32)
-        self._low, self._high = low.astype(float), high.astype(float)
+        self.observation_space = spaces.Box(*observation_bounds(self.setup), dtype=np.float32)
         self.core = TrialBatch(self.setup, 1)
         self._episode = -1
         self._started = False
         self._clipped = np.zeros(1, dtype=np.int64)
         self._command = np.zeros((1, 2))
-        self._obs = np.zeros((1, 6), dtype=np.float32)
 
     @property
     def plant_now(self):
@@ -99,10 +96,7 @@ class FlipperStrikeEnv(gym.Env):
         return self.core.params[0]
 
     def _observe(self) -> np.ndarray:
-        t = self.setup.task
-        observations_into(self.core.y, self.core.k, self.core.ref, t.strike_time, t.dt, t.trial_length,
-                          self.setup.rated_pressure, self._low, self._high, self._obs)
-        return self._obs[0].copy()
+        return self.core.obs[0].copy()
 
     def _info(self) -> dict:
         return {"trial": self._episode, "clipped_actions": int(self._clipped[0]), "readings": self.core.y[0].copy()}

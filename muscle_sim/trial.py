@@ -229,10 +229,12 @@ def _command_and_advance(requested, supply, rated, above, peak, applied, x, x_be
 
 @law
 def _read_and_account(x, diverged, active, read, live, buf, pos, size, left, empty, noise, filtered, levels,
-                      angle_step, blend, y, k, fresh, ref, consts, totals, fault, reward, terminated, truncated):
+                      angle_step, blend, y, k, fresh, ref, consts, totals, fault, reward, terminated, truncated,
+                      obs_consts, low, high, obs):
     """Readings of the active members that did not diverge (noise from their buffers,
     :func:`_take_rows`), folded into their totals with reward and end flags (:func:`_account`),
-    in one compiled call. Returns the number of live members whose noise buffer is used up
+    and every member's observation (:func:`observations_into`; ``obs_consts`` = strike time,
+    control step, trial length, rated pressure), in one compiled call. Returns the number of live members whose noise buffer is used up
     (marked in ``empty``; then nothing is done and the caller refills and calls again), else 0."""
     for i in range(x.shape[0]):
         read[i] = not diverged[i]
@@ -246,6 +248,7 @@ def _read_and_account(x, diverged, active, read, live, buf, pos, size, left, emp
     for i in range(x.shape[0]):
         if active[i]:
             fresh[i] = False
+    observations_into(y, k, ref, obs_consts[0], obs_consts[1], obs_consts[2], obs_consts[3], low, high, obs)
     return 0
 
 
@@ -315,7 +318,8 @@ class TrialBatch:
     """``members`` strike trials of ``setup`` stepped together (see the module docstring).
 
     Per member: ``k`` (samples taken since its start), ``trial`` (its trial index), ``y`` (its
-    latest readings [angle, rate, p_a, p_b] in SI), ``reward``, ``terminated``, ``truncated``.
+    latest readings [angle, rate, p_a, p_b] in SI), ``obs`` (its scaled observation, float32),
+    ``reward``, ``terminated``, ``truncated``.
     ``limit`` caps the steps of a trial (a time limit shorter than the trial); ``record`` keeps
     every member's readings and applied commands for :meth:`rollout`.
     """
@@ -351,6 +355,10 @@ class TrialBatch:
         self.peak_requested = np.zeros(n)
         self._fresh = np.zeros(n, dtype=np.bool_)
         self._read = np.ones(n, dtype=np.bool_)
+        low, high = observation_bounds(setup)
+        self._low, self._high = low.astype(float), high.astype(float)
+        self._obs_consts = np.array([task.strike_time, task.dt, task.trial_length, setup.rated_pressure])
+        self.obs = np.zeros((n, N_OBS), dtype=np.float32)
         self._live = np.ones(n, dtype=np.bool_)
         self._rated = float(setup.rated_pressure)
         self._all = np.ones(n, dtype=np.bool_)
@@ -436,7 +444,8 @@ class TrialBatch:
         while _read_and_account(self.stepper._x, self.stepper.diverged, active, self._read, self._live,
                                 *noise.kernel_args(), sensors.filtered, sensors.levels, sensors.angle_step,
                                 sensors.blend, self.y, self.k, self._fresh, self.ref, self._consts, self.totals,
-                                self.fault, self.reward, self.terminated, self.truncated):
+                                self.fault, self.reward, self.terminated, self.truncated, self._obs_consts,
+                                self._low, self._high, self.obs):
             noise.refill_empty()
         if self.record:
             rows = np.flatnonzero(self._live)

@@ -10,7 +10,7 @@ from gymnasium.vector.utils import batch_space
 
 from .env import DEMO_CONFIG
 from .simulation import Setup
-from .trial import MAX_TRIAL, TrialBatch, actions_to_commands, check_trial, observation_bounds, observations_into
+from .trial import MAX_TRIAL, TrialBatch, actions_to_commands, check_trial, observation_bounds
 
 
 class FlipperStrikeVectorEnv(VectorEnv):
@@ -56,7 +56,6 @@ class FlipperStrikeVectorEnv(VectorEnv):
         self.single_action_space = spaces.Box(-1.0, 1.0, (2,), dtype=np.float32)
         self.observation_space = batch_space(self.single_observation_space, self.num_envs)
         self.action_space = batch_space(self.single_action_space, self.num_envs)
-        self._low, self._high = low.astype(float), high.astype(float)
         self.core = TrialBatch(self.setup, self.num_envs, limit=max_episode_steps)
         self.max_steps = self.core.limit
         n = self.num_envs
@@ -64,15 +63,11 @@ class FlipperStrikeVectorEnv(VectorEnv):
         self._command = np.zeros((n, 2))
         self._needs_reset = np.zeros(n, dtype=bool)
         self._all = np.ones(n, dtype=bool)
-        self._obs = np.zeros((n, 6), dtype=np.float32)
         self._seeded = False
         self._started = False
 
     def _observe(self) -> np.ndarray:
-        t = self.setup.task
-        observations_into(self.core.y, self.core.k, self.core.ref, t.strike_time, t.dt, t.trial_length,
-                          self.setup.rated_pressure, self._low, self._high, self._obs)
-        return self._obs.copy()
+        return self.core.obs.copy()
 
     def _info(self) -> dict:
         return {"trial": self.core.trial.copy(), "_trial": self._all.copy(),
