@@ -96,12 +96,6 @@ class SensorModel:
         readings_into(x, self.filtered, self._noise, self.levels, self.angle_step, self.blend, self._all, out)
         return out
 
-    def read_with(self, x, noise, live, out):
-        """Readings of the members where ``live`` is true, with the standard normals ``noise``
-        (members, n) drawn by the caller (e.g. one generator per member); others untouched."""
-        readings_into(x, self.filtered, noise, self.levels, self.angle_step, self.blend, live, out)
-        return out
-
 
 def measure(sensors: SensorParams, x, filtered_pressure, rng: np.random.Generator, dt: float):
     """Readings ``[angle, rate, p_a, p_b]`` of state(s) ``x`` (..., 6) and the new pressure filter
