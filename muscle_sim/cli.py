@@ -354,7 +354,7 @@ def cmd_compare(args) -> int:
 def cmd_learn_step(args) -> int:
     """One learning step from a logged trial: the next profile for the rig."""
     from controllers.base import PressureProfile
-    from controllers.rig import learn_step, load_state, state_path_for
+    from controllers.rig import learn_step, load_state, logged_pressure_check, state_path_for
     from controllers.tuning import diagnosis_fields
     from .records import read_log, write_json_atomic
     from .simulation import Setup
@@ -363,6 +363,7 @@ def cmd_learn_step(args) -> int:
     profile = PressureProfile.read_csv(args.profile)
     log = read_log(args.rollout, setup.task, resample=args.resample, allow_short=True)
     state = load_state(args.state) if args.state else None
+    logged = logged_pressure_check(setup, log)
     new_profile, new_state, result = learn_step(setup, log, profile, state, args.method)
     out = Path(args.out)
     new_profile.metadata.update({"from_rollout": str(args.rollout), "method": args.method or
@@ -375,7 +376,7 @@ def cmd_learn_step(args) -> int:
               "active_limits": result.active_constraints, "diagnosis": diagnosis_fields(result),
               "largest_change_kpa": result.step_norm_kpa, "profile": str(out), "state": str(state_file),
               "peak_command_kpa": float(new_profile.commands.max()) / 1e3,
-              "safety": safety.GENERAL + " " + safety.HARDWARE}
+              **logged, "safety": safety.GENERAL + " " + safety.HARDWARE}
     from .tasks import strike_metrics
 
     m = strike_metrics(setup.task, log.measured[:, 0], log.measured[:, 1], log.measured[:, 2:4])
@@ -385,6 +386,8 @@ def cmd_learn_step(args) -> int:
         return _print_json(report)
     for note in report["log_notes"]:
         print(f"note: {note}")
+    for caution in report["cautions"]:
+        print(caution)
     lt = report["logged_trial"]
     print(f"logged trial: {tables.metric_words(lt)}")
     print(f"update: {result.message}; cost {result.cost:.4g} -> predicted {result.predicted_cost:.4g}; "
