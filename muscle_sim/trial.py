@@ -97,12 +97,17 @@ def commands_into(actions, full_scale, clipped_count, out):
     return bad
 
 
+#: Action dtypes the compiled path takes as they are (native byte order; numba has no float16 or
+#: long double).
+_COMPILED_DTYPES = (np.dtype(np.float64), np.dtype(np.float32))
+
+
 def actions_to_commands(action, shape: tuple, full_scale: float, clipped_count, out) -> None:
     """Validated actions of ``shape`` ((2,) or (B, 2)) into pressure commands ``out`` (B, 2) [Pa]
-    (:func:`commands_into`); a native float64 array of the right shape takes the compiled path
-    directly, anything else (float16, float32, long double, byte-swapped, lists) is checked and
-    converted by :func:`check_actions` first."""
-    if not (type(action) is np.ndarray and action.dtype == np.float64 and action.shape == shape):
+    (:func:`commands_into`); a native float64 or float32 array (what RL libraries hand over) of the
+    right shape takes the compiled path directly, anything else (float16, long double,
+    byte-swapped, lists) is checked and converted by :func:`check_actions` first."""
+    if not (type(action) is np.ndarray and action.dtype in _COMPILED_DTYPES and action.shape == shape):
         action = check_actions(action, shape)
     if commands_into(action.reshape(out.shape), full_scale, clipped_count, out):
         check_actions(action, shape)          # raises, naming the non-finite values
