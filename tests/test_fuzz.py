@@ -139,6 +139,8 @@ def test_damaged_state_files_learn_or_give_one_line(key, value, first_trial, tmp
         _one_line(exc)
         return
     assert np.all(np.isfinite(new_profile.commands)) and np.all(np.isfinite(new_state.theta))
+    # never a command above the rating for the rig, whatever the state held
+    assert new_profile.commands.max() <= SETUP.rated_pressure + 1.0
 
 
 # -- actions handed to the environments ------------------------------------------------------
