@@ -7,6 +7,7 @@ from pathlib import Path
 
 import numpy as np
 
+from muscle_sim import safety
 from muscle_sim.errors import DataError
 from muscle_sim.threads import single_blas_thread
 
@@ -71,7 +72,43 @@ def learn_step(setup, log, profile: PressureProfile, state: LearnerState | None 
     if not (np.all(np.isfinite(new_profile.commands)) and np.all(np.isfinite(new_state.theta))):
         raise DataError("--rollout: the update from this log is not finite; no profile written "
                         "(check the log for a faulty channel)")
+    peak = float(new_profile.commands.max())
+    if peak > learner.p_high + PRESSURE_SLACK:
+        # the update clips its step to the box, but a guard fallback or a refused step keeps the
+        # knots it was handed: a profile or state from elsewhere must not come back as a command
+        raise DataError(f"--state: the next profile would ask up to {peak / 1e5:.4g} bar, above the learner's upper "
+                        f"pressure limit {learner.p_high / 1e5:g} bar (rated pressure {setup.rated_pressure / 1e5:g} "
+                        f"bar); no profile written (the profile and state passed in hold knots above it)")
     return new_profile, new_state, result
+
+
+#: Rounding slack [Pa] of the profile's interpolation between knots held at the pressure limit.
+PRESSURE_SLACK = 1.0
+
+
+def logged_pressure_check(setup, log) -> dict:
+    """Logged pressures and commands above the rated pressure, counted per sample.
+
+    Returns ``samples_above_rated`` (samples where any logged pressure or command is above the
+    rating), the same count per kind (``pressure_samples_above_rated``,
+    ``command_samples_above_rated``), the peaks logged [kPa] (None where a channel is absent) and
+    ``cautions``: one line per kind above the rating (:func:`muscle_sim.safety.logged_above_rated`).
+    """
+    rated = setup.rated_pressure
+    pressures = np.asarray(log.measured[:, 2:4], dtype=float)
+    commands = np.asarray(log.command, dtype=float)
+    report, cautions, above = {}, [], np.zeros(commands.shape[0], dtype=bool)
+    for kind, values in (("pressure", pressures), ("command", commands)):
+        logged = values[np.isfinite(values)]        # pressures not logged are NaN: nothing to count
+        rows = np.any(values > rated, axis=1)
+        above |= rows
+        peak = float(logged.max()) if logged.size else None
+        report[f"{kind}_samples_above_rated"] = int(np.count_nonzero(rows))
+        report[f"peak_logged_{kind}_kpa"] = None if peak is None else peak / 1e3
+        if rows.any():
+            cautions.append(safety.logged_above_rated(kind, int(np.count_nonzero(rows)), peak / 1e5, rated / 1e5))
+    return {"samples_above_rated": int(np.count_nonzero(above)), **report, "rated_pressure_kpa": rated / 1e3,
+            "cautions": cautions}
 
 
 def load_state(path) -> LearnerState:

@@ -99,8 +99,7 @@ def tune(setup, method: str, trials: int, seed: int, out, resume: bool = False, 
                 or previous.get("seed") != seed:
             raise ValueError(f"--resume: {str(out)!r} was run with another config, method or seed")
         rows = previous["trials"]
-        for stale in out.rglob(".*.part"):            # temp files of writes a kill cut short
-            stale.unlink(missing_ok=True)
+        _remove_stale_parts(out)
         state_path = _paths(out, len(rows))[1]
         if not state_path.exists() and rows:
             raise ValueError(f"--resume: {str(state_path)!r} is missing; the run folder is incomplete")
@@ -108,6 +107,8 @@ def tune(setup, method: str, trials: int, seed: int, out, resume: bool = False, 
         if not fresh:
             state = LearnerState.from_dict(json.loads(state_path.read_text()))
     if fresh:
+        if resume:
+            _remove_stale_parts(out)
         profile0 = start if start is not None else start_profile(setup)
         if reference is not None:
             t = np.arange(setup.task.n_steps + 1) * setup.task.dt
@@ -152,6 +153,12 @@ def tune(setup, method: str, trials: int, seed: int, out, resume: bool = False, 
     write_json_atomic(out / "summary.json", summary)
     _report(setup, out, summary, figures)
     return summary
+
+
+def _remove_stale_parts(out: Path) -> None:
+    """Remove the temp files (``.NAME.*.part``) of writes a kill cut short."""
+    for stale in out.rglob(".*.part"):
+        stale.unlink(missing_ok=True)
 
 
 def _report(setup, out: Path, summary: dict, figures) -> None:

@@ -2,6 +2,7 @@
 from __future__ import annotations
 
 import argparse
+import dataclasses
 import json
 import math
 import shutil
@@ -254,7 +255,12 @@ def _saved_tune_options(folder) -> dict:
     except (ValueError, UnicodeDecodeError):
         raise BadInput(f"--resume: {str(path)!r} is not a tune options file") from None
     if saved.get("config"):
-        saved["config"] = str(Path(folder) / saved["config"])
+        copy = Path(folder) / saved["config"]
+        if not copy.exists() and isinstance(saved.get("config_text"), str) and Path(saved["config"]).name == "config.yaml":
+            # killed between writing the options and the config copy: the options hold its text
+            from .records import write_text_atomic
+            write_text_atomic(copy, saved["config_text"])
+        saved["config"] = str(copy)
     return saved
 
 
@@ -262,13 +268,19 @@ def cmd_tune(args) -> int:
     """Learn a feedforward profile trial by trial on the simulated plant."""
     from controllers.base import PressureProfile
     from controllers.tuning import tune
+    from . import config as cfgmod
     from .simulation import Setup
 
     saved = _saved_tune_options(args.resume) if args.resume else {}
     config = args.config or saved.get("config")
     if config is None:
         raise BadInput("config: missing; give the YAML config (or --resume DIR of a run that saved its own)")
-    setup = Setup.from_config(config)
+    cfg = cfgmod.load(config)
+    if saved.get("source"):
+        # the folder's copy of the config, recorded under the name the run was started with, so
+        # a resumed run writes the same summary and report as one never interrupted
+        cfg = dataclasses.replace(cfg, source=str(saved["source"]))
+    setup = Setup.from_config(cfg)
     if args.trials is None and "trials" in saved:
         args.trials = saved["trials"]
     trials = _trials(args, setup)
@@ -293,10 +305,14 @@ def cmd_tune(args) -> int:
     else:
         out = _out_dir(args, "tune")
         # the run folder keeps what it was started with, so `tune --resume DIR` alone continues it
+        # the options first, holding the config's text too: a kill before that one write leaves
+        # nothing to resume, a kill after it a folder that resumes (config.yaml is the copy to read)
         from .records import write_bytes_atomic, write_json_atomic
-        write_bytes_atomic(out / "config.yaml", Path(config).read_bytes())
-        write_json_atomic(out / "tune_options.json", {"config": "config.yaml", "method": method, "trials": trials,
-                                                      "seed": args.seed, "start": args.start})
+        text = Path(config).read_bytes()
+        write_json_atomic(out / "tune_options.json", {"config": "config.yaml", "source": setup.config.source,
+                                                      "method": method, "trials": trials, "seed": args.seed,
+                                                      "start": args.start, "config_text": text.decode("utf-8")})
+        write_bytes_atomic(out / "config.yaml", text)
     _print_cautions(setup)
     if not args.json:
         print(f"tuning {setup.config.source} with {method} for {trials} trials (seed {args.seed}) into {out}")
@@ -354,7 +370,7 @@ def cmd_compare(args) -> int:
 def cmd_learn_step(args) -> int:
     """One learning step from a logged trial: the next profile for the rig."""
     from controllers.base import PressureProfile
-    from controllers.rig import learn_step, load_state, state_path_for
+    from controllers.rig import learn_step, load_state, logged_pressure_check, state_path_for
     from controllers.tuning import diagnosis_fields
     from .records import read_log, write_json_atomic
     from .simulation import Setup
@@ -363,6 +379,7 @@ def cmd_learn_step(args) -> int:
     profile = PressureProfile.read_csv(args.profile)
     log = read_log(args.rollout, setup.task, resample=args.resample, allow_short=True)
     state = load_state(args.state) if args.state else None
+    logged = logged_pressure_check(setup, log)
     new_profile, new_state, result = learn_step(setup, log, profile, state, args.method)
     out = Path(args.out)
     new_profile.metadata.update({"from_rollout": str(args.rollout), "method": args.method or
@@ -375,7 +392,7 @@ def cmd_learn_step(args) -> int:
               "active_limits": result.active_constraints, "diagnosis": diagnosis_fields(result),
               "largest_change_kpa": result.step_norm_kpa, "profile": str(out), "state": str(state_file),
               "peak_command_kpa": float(new_profile.commands.max()) / 1e3,
-              "safety": safety.GENERAL + " " + safety.HARDWARE}
+              **logged, "safety": safety.GENERAL + " " + safety.HARDWARE}
     from .tasks import strike_metrics
 
     m = strike_metrics(setup.task, log.measured[:, 0], log.measured[:, 1], log.measured[:, 2:4])
@@ -385,6 +402,8 @@ def cmd_learn_step(args) -> int:
         return _print_json(report)
     for note in report["log_notes"]:
         print(f"note: {note}")
+    for caution in report["cautions"]:
+        print(caution)
     lt = report["logged_trial"]
     print(f"logged trial: {tables.metric_words(lt)}")
     print(f"update: {result.message}; cost {result.cost:.4g} -> predicted {result.predicted_cost:.4g}; "

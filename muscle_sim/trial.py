@@ -69,7 +69,8 @@ def check_actions(action, shape: tuple) -> np.ndarray:
         raise ValueError(f"action: {shorten(action)} (dtype {a.dtype}) is not allowed; {allowed}")
     if a.shape != shape:
         raise ValueError(f"action: shape {a.shape} is not allowed; {allowed}")
-    a = a.astype(np.float64)
+    with np.errstate(over="ignore", invalid="ignore"):     # a long double past float64 becomes inf: refused
+        a = a.astype(np.float64)
     if not np.all(np.isfinite(a)):
         raise ValueError(f"action: {shorten(a.tolist())} is not allowed; {allowed}, NaN and inf are refused")
     return a
@@ -96,11 +97,17 @@ def commands_into(actions, full_scale, clipped_count, out):
     return bad
 
 
+#: Action dtypes the compiled path takes as they are (native byte order; numba has no float16 or
+#: long double).
+_COMPILED_DTYPES = (np.dtype(np.float64), np.dtype(np.float32))
+
+
 def actions_to_commands(action, shape: tuple, full_scale: float, clipped_count, out) -> None:
     """Validated actions of ``shape`` ((2,) or (B, 2)) into pressure commands ``out`` (B, 2) [Pa]
-    (:func:`commands_into`); a float array of the right shape takes the compiled path directly,
-    anything else is checked by :func:`check_actions` first."""
-    if not (type(action) is np.ndarray and action.dtype.kind == "f" and action.shape == shape):
+    (:func:`commands_into`); a native float64 or float32 array (what RL libraries hand over) of the
+    right shape takes the compiled path directly, anything else (float16, long double,
+    byte-swapped, lists) is checked and converted by :func:`check_actions` first."""
+    if not (type(action) is np.ndarray and action.dtype in _COMPILED_DTYPES and action.shape == shape):
         action = check_actions(action, shape)
     if commands_into(action.reshape(out.shape), full_scale, clipped_count, out):
         check_actions(action, shape)          # raises, naming the non-finite values

@@ -8,6 +8,8 @@ the reason common practice caps aliases in untrusted YAML.
 """
 from __future__ import annotations
 
+import re
+
 import yaml
 
 from .errors import ConfigError
@@ -24,9 +26,18 @@ MAX_NODES = 100_000
 QUOTE_LENGTH = 60
 
 
+#: Line breaks (as str.splitlines sees them) with the blanks around them; a str's repr escapes
+#: them, other objects' reprs (numpy arrays) may not.
+_LINE_BREAK = re.compile(r"\s*[\n\r\x0b\x0c\x1c-\x1e\x85\u2028\u2029]\s*")
+
+
 def shorten(text, limit: int = QUOTE_LENGTH) -> str:
-    """``repr`` of ``text`` cut to ``limit`` characters (with the full length said) for messages."""
-    s = repr(text)
+    """``repr`` of ``text`` on one line (numpy arrays wrap theirs), cut to ``limit`` characters
+    (with the full length said) for messages; an object without a usable repr is named by type."""
+    try:
+        s = _LINE_BREAK.sub(" ", repr(text))
+    except Exception:           # e.g. an int past Python's digit limit for str(), a broken __repr__
+        return f"<{type(text).__name__}>"
     if len(s) <= limit:
         return s
     return f"{s[:limit]}... ({len(s)} characters)"

@@ -43,6 +43,14 @@ def _kill_when(command, ready, poll: float) -> None:
     proc.wait()
 
 
+def _differing_files(a, b) -> list:
+    """Files of run folders ``a`` and ``b`` that differ byte for byte or exist in one only."""
+    names = {p.relative_to(a) for p in a.rglob("*") if p.is_file()} | {p.relative_to(b) for p in b.rglob("*")
+                                                                      if p.is_file()}
+    return sorted(str(n) for n in names if not ((a / n).is_file() and (b / n).is_file()
+                                                and (a / n).read_bytes() == (b / n).read_bytes()))
+
+
 def test_kill_9_then_resume_matches_an_uninterrupted_run(tmp_path):
     full, cut = tmp_path / "full", tmp_path / "cut"
     args = [sys.executable, "-m", "muscle_sim.cli", "tune", str(DEMO), "--trials", "8", "--seed", "3"]
@@ -57,6 +65,7 @@ def test_kill_9_then_resume_matches_an_uninterrupted_run(tmp_path):
     b = json.loads((cut / "summary.json").read_text())
     assert a["trials"] == b["trials"]
     assert (full / "final_profile.csv").read_bytes() == (cut / "final_profile.csv").read_bytes()
+    assert _differing_files(full, cut) == []
 
 
 def test_a_run_killed_in_its_first_trial_resumes_from_its_folder_alone(tmp_path):
@@ -74,6 +83,23 @@ def test_a_run_killed_in_its_first_trial_resumes_from_its_folder_alone(tmp_path)
         json.loads((cut / "summary.json").read_text())["trials"]
     assert (full / "final_profile.csv").read_bytes() == (cut / "final_profile.csv").read_bytes()
     assert not list(cut.rglob("*.part"))
+    assert _differing_files(full, cut) == []
+
+
+def test_a_run_killed_as_it_starts_resumes_from_its_options_alone(tmp_path):
+    # derived from the run-folder contract: the options file is written first and holds the
+    # config's text, so a kill before the config copy is written (deleted here to stand for it),
+    # with a temp file of a write it cut short, still resumes to the very same folder
+    full, cut = tmp_path / "full", tmp_path / "cut"
+    args = [sys.executable, "-m", "muscle_sim.cli", "tune", str(DEMO), "--trials", "2", "--seed", "4"]
+    subprocess.run(args + ["--out", str(full)], check=True, capture_output=True)
+    _kill_when(args + ["--out", str(cut)], lambda: (cut / "tune_options.json").exists(), 0.0005)
+    for name in ("config.yaml", "summary.json"):
+        (cut / name).unlink(missing_ok=True)
+    (cut / ".summary.json.abc.part").write_text("cut short")
+    subprocess.run([sys.executable, "-m", "muscle_sim.cli", "tune", "--resume", str(cut)], check=True,
+                   capture_output=True)
+    assert _differing_files(full, cut) == []
 
 
 def test_resume_of_a_foreign_folder_is_refused(tmp_path):

@@ -139,3 +139,145 @@ def test_damaged_state_files_learn_or_give_one_line(key, value, first_trial, tmp
         _one_line(exc)
         return
     assert np.all(np.isfinite(new_profile.commands)) and np.all(np.isfinite(new_state.theta))
+    # never a command above the rating for the rig, whatever the state held
+    assert new_profile.commands.max() <= SETUP.rated_pressure + 1.0
+
+
+# -- actions handed to the environments ------------------------------------------------------
+
+#: Env steps of each adversarial-action example (an episode chunk); the steps actually taken are
+#: counted and, with PAMJOINT_FUZZ_COUNTS set to a file, written there for the fuzz campaign.
+ACTION_CHUNK = 100
+#: Members of the vector env under test.
+MEMBERS = 3
+ENV_STEPS = {"single_env_steps": 0, "vector_env_steps": 0, "vector_member_steps": 0,
+             "actions_refused": 0, "episodes_ended": 0}
+#: Envs reset at least once (each stays in an episode from then on: a chunk resets on its end).
+STARTED = []
+
+SCALARS = st.one_of(st.floats(-1.5, 1.5), st.floats(), st.integers(-2 ** 70, 2 ** 70), st.booleans(), st.none(),
+                    st.text(max_size=3), st.binary(max_size=3), st.complex_numbers(),
+                    st.sampled_from([float("nan"), float("inf"), -float("inf"), 10 ** 400, 1e308, 5e-324]))
+NESTED = st.recursive(SCALARS, lambda inner: st.lists(inner, max_size=4) | st.tuples(inner, inner)
+                      | st.dictionaries(st.text(max_size=2), inner, max_size=2), max_leaves=10)
+DTYPES = ["?", "i1", "i2", "i4", "i8", "u1", "u2", "u4", "u8", "f2", "f4", "f8", ">f8", ">f4", "<i8", ">i4",
+          "c8", "c16", "U3", "S3", "M8[s]", "m8[s]"]
+
+
+@st.composite
+def _arrays(draw, shape):
+    """numpy arrays of every kind of dtype (long double and object ones too), of ``shape`` or
+    another shape, with extreme values among ordinary ones."""
+    from hypothesis.extra import numpy as npst
+
+    wanted = draw(st.sampled_from([shape, shape, (2, 1), (1, 2), (3,), (), (shape[0] + 1,) + shape[1:],
+                                   shape + (1,), shape[::-1], (0,) + shape[1:]]))
+    kind = draw(st.sampled_from(DTYPES + ["longdouble", "clongdouble", "object"]))
+    if kind == "object":
+        return draw(npst.arrays(object, wanted, elements=SCALARS))
+    if kind in ("longdouble", "clongdouble"):
+        base = draw(npst.arrays("f8" if kind == "longdouble" else "c16", wanted))
+        scale = draw(st.sampled_from([1.0, 1e-300, np.longdouble("1e4000")]))
+        return base.astype(kind) * scale
+    dtype = np.dtype(kind)
+    elements = st.floats(-1.5, 1.5, width=8 * dtype.itemsize) if dtype.kind == "f" and draw(st.booleans()) else None
+    array = draw(npst.arrays(dtype, wanted, elements=elements))
+    return array[::-1] if array.ndim and draw(st.booleans()) else array       # a strided view
+
+
+def _actions(shape):
+    """What a caller may hand to ``step``: valid actions (inside and outside [-1, 1]) and
+    anything else: nested lists, arrays of every dtype, huge ints, NaN and inf, None, dicts,
+    wrong shapes."""
+    valid = st.lists(st.floats(-3.0, 3.0), min_size=int(np.prod(shape)), max_size=int(np.prod(shape))).map(
+        lambda v: np.reshape(v, shape).tolist())
+    return st.one_of(valid, _arrays(shape), NESTED, st.lists(NESTED, min_size=shape[0], max_size=shape[0]))
+
+
+@pytest.fixture(scope="module")
+def envs():
+    import gymnasium as gym
+
+    import muscle_sim  # noqa: F401  (registers the env ids)
+
+    single = gym.make("pamjoint/FlipperStrike-v1", config=str(DEMO))
+    vector = gym.make_vec("pamjoint/FlipperStrike-v1", num_envs=MEMBERS, vectorization_mode="vector_entry_point",
+                          config=str(DEMO))
+    yield {"single": single, "vector": vector}
+    single.close()
+    vector.close()
+    counts = os.environ.get("PAMJOINT_FUZZ_COUNTS")
+    if counts:
+        from muscle_sim.records import write_json_atomic
+        write_json_atomic(counts, ENV_STEPS)
+
+
+def _step_checked(env, action, vector: bool):
+    """One step: a normal result (finite observation inside the space, finite float reward) or a
+    one-line ValueError about the action (returns None then); never another exception."""
+    try:
+        obs, reward, terminated, truncated, info = env.step(action)
+    except ValueError as exc:
+        message = str(exc)
+        assert message.startswith("action") and len(message.splitlines()) == 1 and len(message) < 600, message
+        ENV_STEPS["actions_refused"] += 1
+        return None
+    assert np.all(np.isfinite(obs)) and env.observation_space.contains(obs), obs
+    if vector:
+        assert reward.shape == (MEMBERS,) and reward.dtype.kind == "f" and np.all(np.isfinite(reward))
+        ENV_STEPS["vector_env_steps"] += 1
+        ENV_STEPS["vector_member_steps"] += MEMBERS
+        ended = np.logical_or(terminated, truncated)
+        ENV_STEPS["episodes_ended"] += int(np.count_nonzero(ended))
+        return False
+    assert type(reward) is float and np.isfinite(reward)
+    assert type(terminated) is bool and type(truncated) is bool
+    ENV_STEPS["single_env_steps"] += 1
+    ENV_STEPS["episodes_ended"] += int(terminated or truncated)
+    return terminated or truncated
+
+
+def _episode_chunk(env, vector: bool, seed, reset, odd, at, mode):
+    """``ACTION_CHUNK`` valid steps (random, bang-bang or far outside [-1, 1]) with the odd
+    actions ``odd`` handed over at the steps ``at``; the env keeps its episode across examples
+    unless ``reset`` (episodes end inside chunks too: truncation, faults, autoreset)."""
+    shape = (MEMBERS, 2) if vector else (2,)
+    if reset or env not in STARTED:
+        env.reset(seed=seed)
+        STARTED.append(env)
+    rng = np.random.default_rng(seed)
+    pending = sorted(zip(at, range(len(odd))))
+    for k in range(ACTION_CHUNK):
+        while pending and pending[0][0] == k:
+            _, j = pending.pop(0)
+            if _step_checked(env, odd[j], vector):
+                env.reset()
+        if mode == "random":
+            action = rng.uniform(-1.2, 1.2, shape).astype(np.float32)
+        elif mode == "bang":
+            action = np.where(rng.random(shape) < 0.5, -1.0, 1.0).astype(np.float32)
+        else:
+            action = rng.uniform(-1e6, 1e6, shape)
+        done = _step_checked(env, action, vector)
+        assert done is not None, "a valid action was refused"
+        if done:
+            env.reset()
+
+
+def _chunk_args(shape):
+    return dict(seed=st.integers(0, 2 ** 31 - 1), reset=st.booleans(),
+                odd=st.lists(_actions(shape), min_size=1, max_size=6),
+                at=st.lists(st.integers(0, ACTION_CHUNK - 1), min_size=6, max_size=6),
+                mode=st.sampled_from(["random", "random", "bang", "far"]))
+
+
+@FUZZ
+@given(**_chunk_args((2,)))
+def test_arbitrary_actions_step_the_env_or_give_one_line(envs, seed, reset, odd, at, mode):
+    _episode_chunk(envs["single"], False, seed, reset, odd, at, mode)
+
+
+@FUZZ
+@given(**_chunk_args((MEMBERS, 2)))
+def test_arbitrary_actions_step_the_vector_env_or_give_one_line(envs, seed, reset, odd, at, mode):
+    _episode_chunk(envs["vector"], True, seed, reset, odd, at, mode)

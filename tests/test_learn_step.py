@@ -164,3 +164,65 @@ def test_damaged_state_files_are_one_line_errors(tune_dir, tmp_path, text, expec
             "--profile", str(tune_dir / "profiles" / "profile-0000.csv"), "--state", str(state),
             "--config", str(DEMO), "--out", str(tmp_path / "n.csv")], expect)
     assert not (tmp_path / "n.csv").exists()
+
+
+def _logged_pressures(tune_dir, tmp_path, name, above=()):
+    """Trial 0's log with measured pressures; ``above``: (row, column, kPa) samples raised."""
+    def edit(header, rows):
+        r = read_log(tune_dir / "rollouts" / "trial-0000.csv", Setup.from_config(DEMO).task)
+        rows = np.column_stack([rows, r.measured[:, 2:4] / 1e3])
+        for i, c, v in above:
+            rows[i, c] = v
+        return header + ["pressure_a [kPa]", "pressure_b [kPa]"], rows
+    return _rig_log(tune_dir, tmp_path, name=name, edit=edit)
+
+
+def test_logged_samples_above_the_rating_carry_a_caution_counted_per_sample(tune_dir, tmp_path, capsys):
+    # configs/flipper.yaml: rated pressure 6 bar = 600 kPa. Rows 100-102 read 6.3 bar on muscle A
+    # (row 101 on both muscles: still one sample) and rows 200-201 command 6.5 bar on muscle B
+    profile = str(tune_dir / "profiles" / "profile-0000.csv")
+    raised = [(100, 4, 630.0), (101, 4, 615.0), (101, 5, 612.0), (102, 4, 601.0), (200, 3, 650.0), (201, 3, 620.0)]
+    log = _logged_pressures(tune_dir, tmp_path, "hot.csv", raised)
+    args = ["learn-step", "--rollout", str(log), "--profile", profile, "--config", str(DEMO)]
+    assert cli.main(args + ["--out", str(tmp_path / "a.csv"), "--json"]) == 0
+    report = json.loads(capsys.readouterr().out)
+    assert report["samples_above_rated"] == 5
+    assert report["pressure_samples_above_rated"] == 3 and report["command_samples_above_rated"] == 2
+    assert report["peak_logged_pressure_kpa"] == pytest.approx(630.0)
+    assert report["peak_logged_command_kpa"] == pytest.approx(650.0)
+    assert len(report["cautions"]) == 2
+    pressure, command = report["cautions"]
+    assert "measured pressures exceed the rated pressure 6 bar gauge in 3 sample(s) (peak 6.3 bar)" in pressure
+    assert "commands exceed the rated pressure 6 bar gauge in 2 sample(s) (peak 6.5 bar)" in command
+    assert all(c.startswith("CAUTION:") and "ISO 4414" in c and "\n" not in c for c in report["cautions"])
+    assert cli.main(args + ["--out", str(tmp_path / "b.csv")]) == 0
+    printed = capsys.readouterr().out.splitlines()
+    assert [line for line in printed if line.startswith("CAUTION")] == report["cautions"]
+
+
+def test_a_clean_log_carries_no_caution(tune_dir, tmp_path, capsys):
+    log = _logged_pressures(tune_dir, tmp_path, "clean.csv")
+    args = ["learn-step", "--rollout", str(log), "--profile", str(tune_dir / "profiles" / "profile-0000.csv"),
+            "--config", str(DEMO)]
+    assert cli.main(args + ["--out", str(tmp_path / "a.csv"), "--json"]) == 0
+    report = json.loads(capsys.readouterr().out)
+    assert report["cautions"] == [] and report["samples_above_rated"] == 0
+    assert report["pressure_samples_above_rated"] == 0 and report["command_samples_above_rated"] == 0
+    assert 0 < report["peak_logged_pressure_kpa"] <= 600.0 and 0 < report["peak_logged_command_kpa"] <= 600.0
+    assert cli.main(args + ["--out", str(tmp_path / "b.csv")]) == 0
+    assert "CAUTION" not in capsys.readouterr().out
+
+
+def test_the_next_profile_never_asks_above_the_rating(tune_dir, tmp_path):
+    # a state whose guard reference holds knots at 7 bar (above the demo's 6 bar rating) and a
+    # reference cost no trial meets: the guard falls back to those knots, which must not become
+    # the next command for the rig
+    state = json.loads((tune_dir / "profiles" / "state-0001.json").read_text())
+    state["extra"].update({"ref_cost": 1e-12, "ref_theta": [7e5] * len(state["theta"]), "rerun": False})
+    path = tmp_path / "s.json"
+    path.write_text(json.dumps(state))
+    _fails(["learn-step", "--rollout", str(tune_dir / "rollouts" / "trial-0001.csv"),
+            "--profile", str(tune_dir / "profiles" / "profile-0001.csv"), "--state", str(path),
+            "--config", str(DEMO), "--out", str(tmp_path / "n.csv")],
+           "above the learner's upper pressure limit 6 bar")
+    assert not (tmp_path / "n.csv").exists()
