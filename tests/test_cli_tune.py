@@ -51,6 +51,18 @@ def _differing_files(a, b) -> list:
                                                 and (a / n).read_bytes() == (b / n).read_bytes()))
 
 
+def _resume_alone_matches(full, cut) -> None:
+    """``tune --resume CUT`` with nothing else gives the uninterrupted folder ``full``, file for
+    file, and leaves no temp file behind."""
+    subprocess.run([sys.executable, "-m", "muscle_sim.cli", "tune", "--resume", str(cut)], check=True,
+                   capture_output=True)
+    assert json.loads((full / "summary.json").read_text())["trials"] == \
+        json.loads((cut / "summary.json").read_text())["trials"]
+    assert (full / "final_profile.csv").read_bytes() == (cut / "final_profile.csv").read_bytes()
+    assert not list(cut.rglob("*.part"))
+    assert _differing_files(full, cut) == []
+
+
 def test_kill_9_then_resume_matches_an_uninterrupted_run(tmp_path):
     full, cut = tmp_path / "full", tmp_path / "cut"
     args = [sys.executable, "-m", "muscle_sim.cli", "tune", str(DEMO), "--trials", "8", "--seed", "3"]
@@ -77,13 +89,7 @@ def test_a_run_killed_in_its_first_trial_resumes_from_its_folder_alone(tmp_path)
     _kill_when(args + ["--out", str(cut)], lambda: (cut / "summary.json").exists(), 0.002)
     assert len(json.loads((cut / "summary.json").read_text())["trials"]) < 3
     (cut / "profiles" / ".state-0001.json.abc.part").write_text("cut short")
-    subprocess.run([sys.executable, "-m", "muscle_sim.cli", "tune", "--resume", str(cut)], check=True,
-                   capture_output=True)
-    assert json.loads((full / "summary.json").read_text())["trials"] == \
-        json.loads((cut / "summary.json").read_text())["trials"]
-    assert (full / "final_profile.csv").read_bytes() == (cut / "final_profile.csv").read_bytes()
-    assert not list(cut.rglob("*.part"))
-    assert _differing_files(full, cut) == []
+    _resume_alone_matches(full, cut)
 
 
 def test_a_run_killed_as_it_starts_resumes_from_its_options_alone(tmp_path):
@@ -97,9 +103,7 @@ def test_a_run_killed_as_it_starts_resumes_from_its_options_alone(tmp_path):
     for name in ("config.yaml", "summary.json"):
         (cut / name).unlink(missing_ok=True)
     (cut / ".summary.json.abc.part").write_text("cut short")
-    subprocess.run([sys.executable, "-m", "muscle_sim.cli", "tune", "--resume", str(cut)], check=True,
-                   capture_output=True)
-    assert _differing_files(full, cut) == []
+    _resume_alone_matches(full, cut)
 
 
 def test_resume_of_a_foreign_folder_is_refused(tmp_path):
