@@ -338,7 +338,8 @@ def cmd_tune(args) -> int:
     verdict = summary.get("verdict") or {}
     if verdict:
         print(f"verdict: {verdict['message']}; next: {verdict['next_action']}")
-    print(f"wrote {out}/summary.json, profiles/, rollouts/, final_profile.csv, learning_curve.png, trajectories.png")
+    print(f"wrote {out}/summary.json, profiles/, rollouts/, final_profile.csv, learning_curve.png, trajectories.png, "
+          "report.html")
     print(safety.GENERAL)
     print(safety.HARDWARE)
     return 0
