@@ -335,7 +335,6 @@ class TrialBatch:
         task = setup.task
         self.setup, self.task, self.members = setup, task, int(members)
         n = self.members
-        self.limit = task.n_steps
         self.set_limit(limit)
         plant = setup.plant
         self.stepper = Stepper(plant, task.dt, task.n_substeps, batch=n)
