@@ -96,8 +96,9 @@ def _trials_done(folder: Path):
 
 
 def _kills(n: int, rng: random.Random) -> dict:
-    """n kill -9s of a tune at random moments, each resumed from the folder alone and compared
-    with an uninterrupted run file by file; a quarter fall in the first second."""
+    """n kill -9s of a tune at random moments, each resumed from the folder alone (or, killed
+    before the folder held anything, started again with the same command) and compared with an
+    uninterrupted run file by file; a quarter fall in the first second."""
     results = []
     with tempfile.TemporaryDirectory() as tmp:
         full = Path(tmp) / "full"
@@ -122,9 +123,14 @@ def _kills(n: int, rng: random.Random) -> dict:
                 run["differing_files"] = _differences(full, cut) if done.returncode == 0 else None
                 ok = done.returncode == 0 and not run["differing_files"]
             else:
-                # killed before the folder held anything to resume: starting again is the answer
-                ok = not cut.exists() or not any(p for p in cut.rglob("*") if p.is_file() and
-                                                 not p.name.endswith(".part"))
+                # killed before the folder held anything to resume: starting the same command
+                # again is the answer, and must give the uninterrupted run's folder
+                empty = not cut.exists() or not any(p for p in cut.rglob("*") if p.is_file() and
+                                                    not p.name.endswith(".part"))
+                again = subprocess.run(_tune([], cut), capture_output=True, text=True)
+                run["restart_exit"] = again.returncode
+                run["differing_files"] = _differences(full, cut) if again.returncode == 0 else None
+                ok = empty and again.returncode == 0 and not run["differing_files"]
             run["identical_or_empty"] = bool(ok)
             results.append(run)
     return {"kills": n, "uninterrupted_seconds": length, "identical": sum(r["identical_or_empty"] for r in results),
@@ -144,16 +150,28 @@ def main(argv=None) -> dict:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--scale", type=float, default=25.0, help="examples relative to CI's (default 25)")
     parser.add_argument("--kills", type=int, default=20, help="kill -9s of a tune run (default 20)")
+    parser.add_argument("--kills-only", action="store_true",
+                        help="only the kill -9 part, written to results/fuzz_campaign_kills.json")
     args = parser.parse_args(argv)
     rng = random.Random(11)
     t0 = time.perf_counter()
     source = _source_digest()
+    if args.kills_only:
+        kills = _kills(args.kills, rng)
+        print(f"kill -9: {kills['identical']} of {kills['kills']} identical to the uninterrupted run")
+        out = {"benchmark": "fuzz_campaign_kills", "python": platform.python_version(),
+               "machine": platform.machine(), "source_digest": source,
+               "source_changed_during_run": _source_digest() != source, "kill_resume": kills,
+               "wall_seconds": time.perf_counter() - t0}
+        write_json_atomic(ROOT / "benchmarks" / "results" / "fuzz_campaign_kills.json", out)
+        return out
     fuzz = {name: _run_fuzz(name, args.scale) for name in BASE_EXAMPLES}
     for name, r in fuzz.items():
         print(f"{name}: {r['examples']} examples, {'ok' if r['passed'] else 'FAILED: ' + r['failure']} "
               f"({r['seconds']:.0f} s)", flush=True)
     kills = _kills(args.kills, rng)
-    print(f"kill -9: {kills['identical']} of {kills['kills']} resumed identical (or left nothing to resume)")
+    print(f"kill -9: {kills['identical']} of {kills['kills']} identical to the uninterrupted run (resumed, or "
+          f"started again where the kill left nothing to resume)")
     out = {"benchmark": "fuzz_campaign", "python": platform.python_version(), "machine": platform.machine(),
            "scale": args.scale, "source_digest": source, "source_changed_during_run": _source_digest() != source,
            "fuzz": fuzz, "kill_resume": kills,
