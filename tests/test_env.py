@@ -317,3 +317,29 @@ def test_render_returns_an_image():
     env.reset(seed=0)
     frame = env.render()
     assert frame.dtype == np.uint8 and frame.ndim == 3 and frame.shape[2] == 3
+
+
+@pytest.mark.parametrize("draw", [0, 1, 2, 3])
+def test_native_and_sync_vector_envs_agree_on_randomly_drawn_plants(draw):
+    # plants not in the repository (scenarios.draw_scenario: payload, delay, friction, noise,
+    # force-model error, drift drawn over the mismatch ranges), same reference as above
+    import yaml
+
+    from muscle_sim.scenarios import draw_scenario
+
+    raw = draw_scenario(yaml.safe_load(DEMO.read_text(encoding="utf-8")), np.random.default_rng(100 + draw))
+    actions = np.random.default_rng(draw).uniform(-1.1, 1.1, size=(90, 2, 2)).astype(np.float32)
+    out = []
+    for mode in ("sync", "vector_entry_point"):
+        venv = gym.make_vec(ENV_ID, num_envs=2, vectorization_mode=mode, config=raw, max_episode_steps=35)
+        obs, _ = venv.reset(seed=draw)
+        rows = [(obs, 0.0, False)]
+        for a in actions:
+            obs, r, term, trunc, _ = venv.step(a)
+            rows.append((obs, r, term | trunc))
+        venv.close()
+        out.append(rows)
+    for (o1, r1, d1), (o2, r2, d2) in zip(*out):
+        np.testing.assert_allclose(o2, o1, rtol=1e-6, atol=1e-9)
+        np.testing.assert_allclose(r2, r1, rtol=1e-9, atol=1e-12)
+        assert np.array_equal(d1, d2)
