@@ -26,11 +26,19 @@ draws and over those shown within reach.
 
 Usage: ``python benchmarks/learning.py [--draws N] [--jobs J] [--no-spsa] [--no-reach]``; cases run in J
 processes (concurrent.futures), each with BLAS pinned to one thread (threadpoolctl).
+
+Studying a change of the learner: ``--set KEY=VALUE`` (repeatable) puts a config value into every
+case after it is drawn (``--set learning.regularisation=0.02``), ``--only NAME,...`` runs some cases
+(``demo``, ``scenario/finger``, ``draw/40``), ``--compare OLD.json`` lists the cases whose verdict
+changed against an earlier run and the median ratio of their RMS after 10 trials (new / old), so a
+change is judged on the whole suite, not on the case that suggested it.
 """
 from __future__ import annotations
 
 import argparse
 import concurrent.futures
+import copy
+import json
 import multiprocessing
 import platform
 import statistics
@@ -196,6 +204,57 @@ def cases(draws: int, spsa: bool, reach: bool):
     return out
 
 
+def parse_override(text: str):
+    """``KEY=VALUE`` of ``--set``: a dotted config key and its YAML value (``0.02``, ``8 ms``)."""
+    key, sep, value = text.partition("=")
+    parts = key.strip().split(".")
+    if not sep or not all(p.strip() for p in parts):
+        raise ValueError(f"--set: {text!r} is not allowed; must be KEY=VALUE with a dotted config key, "
+                         f"e.g. learning.regularisation=0.02")
+    return [p.strip() for p in parts], yaml.safe_load(value)
+
+
+def with_overrides(raw: dict, overrides) -> dict:
+    """``raw`` with every ``(key parts, value)`` of ``overrides`` put in (a copy)."""
+    raw = copy.deepcopy(raw)
+    for parts, value in overrides:
+        node = raw
+        for part in parts[:-1]:
+            child = node.get(part)
+            if not isinstance(child, dict):
+                child = node[part] = {}
+            node = child
+        node[parts[-1]] = value
+    return raw
+
+
+def select(todo, only):
+    """The cases of ``todo`` named in ``only`` (comma-separated; None: all)."""
+    if only is None:
+        return todo
+    wanted = [n.strip() for n in only.split(",") if n.strip()]
+    names = {case[0] for case in todo}
+    unknown = [n for n in wanted if n not in names]
+    if unknown or not wanted:
+        raise ValueError(f"--only: {(unknown or [only])[0]!r} is not allowed; must name cases of this run, "
+                         f"e.g. demo, scenario/finger, draw/0 (draws 0..{sum(n.startswith('draw/') for n in names) - 1})")
+    return [case for case in todo if case[0] in wanted]
+
+
+def comparison(results, old: dict) -> dict:
+    """Verdict changes and RMS-after-10 ratios (new / old) against an earlier run's JSON."""
+    before = {c["name"]: c for c in old.get("cases", [])}
+    common = [r for r in results if r["name"] in before]
+    ratios = [r["rms_after_10_trials_deg"] / before[r["name"]]["rms_after_10_trials_deg"] for r in common
+              if r["rms_after_10_trials_deg"] and before[r["name"]]["rms_after_10_trials_deg"]]
+    return {"cases_in_both": len(common),
+            "passed_before": sum(bool(before[r["name"]]["passed"]) for r in common),
+            "passed_now": sum(bool(r["passed"]) for r in common),
+            "now_passing": [r["name"] for r in common if r["passed"] and not before[r["name"]]["passed"]],
+            "now_failing": [r["name"] for r in common if not r["passed"] and before[r["name"]]["passed"]],
+            "median_rms10_ratio_new_over_old": statistics.median(ratios) if ratios else None}
+
+
 def _summary(results, prefix):
     group = [r for r in results if r["name"].startswith(prefix)]
     keys = sorted({k for r in group for k in r["checks"]})
@@ -238,8 +297,26 @@ def main(argv=None) -> dict:
     parser.add_argument("--no-reach", action="store_true", help="skip the matched-prior reach reference")
     parser.add_argument("--out", type=Path, default=ROOT / "benchmarks" / "results" / "learning.json",
                         help="where to write the JSON (default benchmarks/results/learning.json)")
+    parser.add_argument("--set", dest="overrides", action="append", default=[], metavar="KEY=VALUE",
+                        help="config value put into every case, e.g. learning.regularisation=0.02 (repeatable)")
+    parser.add_argument("--only", help="comma-separated case names to run, e.g. demo,scenario/finger,draw/40")
+    parser.add_argument("--compare", type=Path, help="an earlier learning.json to compare the verdicts with")
     args = parser.parse_args(argv)
-    todo = cases(args.draws, not args.no_spsa, not args.no_reach)
+    try:
+        overrides = [parse_override(text) for text in args.overrides]
+        todo = select(cases(args.draws, not args.no_spsa, not args.no_reach), args.only)
+        old = None
+        if args.compare is not None:
+            try:
+                old = json.loads(args.compare.read_text())
+            except (OSError, ValueError) as exc:
+                raise ValueError(f"--compare: {str(args.compare)!r} cannot be read as a learning.json "
+                                 f"({type(exc).__name__}); must be the JSON of an earlier run") from None
+        for name, raw, *_ in todo:
+            Setup.from_config(with_overrides(raw, overrides))     # a bad value fails here, on one line
+    except (ValueError, OSError) as exc:
+        parser.error(str(exc).splitlines()[0])
+    todo = [(name, with_overrides(raw, overrides), *rest) for name, raw, *rest in todo]
     t0 = time.perf_counter()
     results = []
     context = multiprocessing.get_context("spawn")
@@ -255,6 +332,7 @@ def main(argv=None) -> dict:
     named, drawn = _summary(results, "scenario/"), _summary(results, "draw/")
     out = {"benchmark": "learning", "python": platform.python_version(), "numpy": np.__version__,
            "machine": platform.machine(), "jobs": args.jobs, "draws": args.draws,
+           "overrides": args.overrides, "only": args.only,
            "wall_seconds": time.perf_counter() - t0,
            "definitions": {
                "trial": "index of a measured trial from 0; trial 0 runs the model-only profile",
@@ -281,10 +359,17 @@ def main(argv=None) -> dict:
                                                         "spsa") if k in r} for r in results if r["name"] == "demo"),
                                     None)},
            "cases": results}
+    if old is not None:
+        out["comparison"] = {"against": str(args.compare), **comparison(results, old)}
     write_json_atomic(args.out, out)
     print(f"named scenarios: {named['passed']}/{named['cases']} pass; random draws: {drawn['passed']}/{drawn['cases']}"
           f" pass (goal >= {DRAW_GOAL:.0%}); {drawn['shown_within_reach']} draws shown within reach, of which "
           f"{drawn['passed_of_shown_within_reach']} pass; {out['wall_seconds']:.0f} s with {args.jobs} job(s)")
+    if old is not None:
+        c = out["comparison"]
+        print(f"against {args.compare}: {c['passed_before']} -> {c['passed_now']} of {c['cases_in_both']} pass; now "
+              f"passing {', '.join(c['now_passing']) or '-'}; now failing {', '.join(c['now_failing']) or '-'}; "
+              f"median RMS-after-10 ratio new / old {c['median_rms10_ratio_new_over_old']}")
     return out
 
 

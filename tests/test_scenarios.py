@@ -188,3 +188,48 @@ def test_matched_prior_is_the_plant_where_the_prior_can_be(seed):
     assert prior.muscle == plant.muscle          # the draws use the tanh law
     # the lag model's time constant is not used by the valve model
     assert replace(prior.pneumatics, lag_time_constant=plant.pneumatics.lag_time_constant) == plant.pneumatics
+
+
+def _learning_benchmark():
+    """benchmarks/learning.py as a module (it is a script, not part of the package)."""
+    import importlib.util
+
+    spec = importlib.util.spec_from_file_location("learning_benchmark", ROOT / "benchmarks" / "learning.py")
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    return module
+
+
+def test_learning_study_override_reaches_every_case_and_bad_input_is_one_line():
+    bench = _learning_benchmark()
+    todo = bench.select(bench.cases(3, False, False), "demo,scenario/finger,draw/2")
+    assert [c[0] for c in todo] == ["demo", "scenario/finger", "draw/2"]
+    override = bench.parse_override("learning.regularisation=0.02")
+    assert override == (["learning", "regularisation"], 0.02)
+    for _, raw, *_ in todo:
+        changed = bench.with_overrides(raw, [override, bench.parse_override("task.strike_speed=11 rad/s")])
+        setup = Setup.from_config(changed)
+        assert setup.config.get("learning.regularisation") == 0.02
+        assert setup.task.strike_speed == pytest.approx(11.0)
+        assert raw["learning"]["regularisation"] == 0.05       # the case itself is left as it was
+    for bad, flag in (("regularisation", "--set"), ("=1", "--set"), ("a..b=1", "--set")):
+        with pytest.raises(ValueError, match=f"^{flag}: ") as info:
+            bench.parse_override(bad)
+        assert "\n" not in str(info.value)
+    with pytest.raises(ValueError, match="^--only: 'draw/7' is not allowed"):
+        bench.select(bench.cases(3, False, False), "demo,draw/7")
+
+
+def test_learning_study_comparison_counts_verdict_changes():
+    bench = _learning_benchmark()
+    old = {"cases": [{"name": "a", "passed": True, "rms_after_10_trials_deg": 0.2},
+                     {"name": "b", "passed": False, "rms_after_10_trials_deg": 0.8},
+                     {"name": "c", "passed": False, "rms_after_10_trials_deg": 1.0}]}
+    new = [{"name": "a", "passed": False, "rms_after_10_trials_deg": 0.4},
+           {"name": "b", "passed": True, "rms_after_10_trials_deg": 0.4},
+           {"name": "c", "passed": False, "rms_after_10_trials_deg": 1.0},
+           {"name": "d", "passed": True, "rms_after_10_trials_deg": 0.1}]
+    c = bench.comparison(new, old)
+    # derived by hand: a, b and c are in both runs; ratios 2.0, 0.5 and 1.0, median 1.0 (mean 1.17)
+    assert c == {"cases_in_both": 3, "passed_before": 1, "passed_now": 1, "now_passing": ["b"],
+                 "now_failing": ["a"], "median_rms10_ratio_new_over_old": 1.0}
