@@ -312,6 +312,11 @@ def main(argv=None) -> dict:
             except (OSError, ValueError) as exc:
                 raise ValueError(f"--compare: {str(args.compare)!r} cannot be read as a learning.json "
                                  f"({type(exc).__name__}); must be the JSON of an earlier run") from None
+            listed = old.get("cases") if isinstance(old, dict) else None
+            if not isinstance(listed, list) or not all(isinstance(c, dict) and {"name", "passed",
+                                                       "rms_after_10_trials_deg"} <= set(c) for c in listed):
+                raise ValueError(f"--compare: {str(args.compare)!r} has no cases of a learning run; must be "
+                                 f"the JSON this benchmark writes")
         for name, raw, *_ in todo:
             Setup.from_config(with_overrides(raw, overrides))     # a bad value fails here, on one line
     except (ValueError, OSError) as exc:
