@@ -60,6 +60,7 @@ from muscle_sim.records import write_json_atomic  # noqa: E402
 from muscle_sim.runs import run_trial  # noqa: E402
 from muscle_sim.scenarios import draw_scenario, with_matched_prior  # noqa: E402
 from muscle_sim.simulation import Setup  # noqa: E402
+from muscle_sim.sweep import set_value  # noqa: E402
 
 ANGLE_GOAL, SPEED_GOAL = 0.2, 1.0          # strike within 0.2 deg and 1 % of its speed
 RMS_RATIO_GOAL = 20.0                      # model-only RMS / RMS after 10 trials
@@ -218,13 +219,7 @@ def with_overrides(raw: dict, overrides) -> dict:
     """``raw`` with every ``(key parts, value)`` of ``overrides`` put in (a copy)."""
     raw = copy.deepcopy(raw)
     for parts, value in overrides:
-        node = raw
-        for part in parts[:-1]:
-            child = node.get(part)
-            if not isinstance(child, dict):
-                child = node[part] = {}
-            node = child
-        node[parts[-1]] = value
+        set_value(raw, ".".join(parts), value)
     return raw
 
 

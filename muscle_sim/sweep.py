@@ -279,7 +279,8 @@ def _as_written(kind: str, value):
     return value
 
 
-def _set(raw: dict, dotted: str, value) -> None:
+def set_value(raw: dict, dotted: str, value) -> None:
+    """Put ``value`` at the dotted key of a raw config (in place), making sections as needed."""
     *head, last = dotted.split(".")
     node = raw
     for part in head:
@@ -312,7 +313,7 @@ def sample_plan(spec: dict, index: int) -> tuple:
     point = _grid_point(spec, index)
     for entry in spec["vary"]:
         value = _draw(entry, spec["seed"], index, point)
-        _set(raw, entry["key"], _as_written(entry["kind"], value))
+        set_value(raw, entry["key"], _as_written(entry["kind"], value))
         values[entry["key"]] = value
     return raw, values
 
