@@ -161,7 +161,7 @@ class _Prior:
         knot [rad/Pa, rad/s/Pa], from the prior linearised along its own swing."""
         traj = self.swing(theta)
         if self._jac_key != self._key:
-            lin = linearise(self.prior, traj[:, :4], self._commands, self.task)
+            lin = linearise(self.prior, traj, self._commands, self.task)
             self._jac = lin.forward_on_basis(self.phi)
             self._jac_key = self._key
             self.linearisations += 1

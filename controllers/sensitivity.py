@@ -2,15 +2,19 @@
 adjoint (G0^T w) passes, O(N) each.
 
 The prior's one-control-step map ``x_{k+1} = f(x_k, u_{k-d})`` (RK4 on the prior's right-hand
-side, ``d`` its command delay in control steps) is linearised at the MEASURED states
-``x_k = [angle, rate, p_a, p_b]`` of a trial: ``A_k = df/dx``, ``B_k = df/du`` by central
-differences of that one-step map, all samples in one batched call. The lifted map from commands
-to outputs (angle at every sample, rate at the strike sample) then has the Jacobian ``G0`` whose
-products are computed by a forward (sensitivity) and a backward (adjoint) recursion: the products
-``G0 v`` and ``G0^T w`` that gradient and norm-optimal iterative learning control need (Owens,
-Hatonen & Daley 2009, Int. J. Robust Nonlinear Control; Amann, Owens & Rogers 1996, IEE Proc.
-Control Theory Appl. 143(2)). The recursions are compiled with numba; on a hat-function profile basis the
-forward pass touches only the knots already excited (commands are two knots per sample).
+side, ``d`` its command delay in control steps) is linearised at the MEASURED states of a trial:
+``x_k = [angle, rate, p_a, p_b]`` for the regulator-lag prior, and with the two valve spool
+openings appended for a valve-flow prior (its spools carry the pressure response from one step to
+the next; they are not measured, so :func:`measured_states` rebuilds them from the measured
+pressures and the commands by the prior's own spool law). ``A_k = df/dx``, ``B_k = df/du`` by
+central differences of that one-step map, all samples in one batched call. The lifted map from
+commands to outputs (angle at every sample, rate at the strike sample) then has the Jacobian
+``G0`` whose products are computed by a forward (sensitivity) and a backward (adjoint) recursion:
+the products ``G0 v`` and ``G0^T w`` that gradient and norm-optimal iterative learning control
+need (Owens, Hatonen & Daley 2009, Int. J. Robust Nonlinear Control; Amann, Owens & Rogers 1996,
+IEE Proc. Control Theory Appl. 143(2)). The recursions are compiled with numba; on a hat-function
+profile basis the forward pass touches only the knots already excited (commands are two knots per
+sample).
 """
 from __future__ import annotations
 
@@ -21,39 +25,49 @@ import numpy as np
 
 from muscle_sim.integrate import delay_steps as steps_of_delay, rk4_step
 from muscle_sim.params import PlantParams
+from muscle_sim.pneumatics import spool_rate
 
-_NX = 4  # angle, rate, p_a, p_b (the prior's spool states are inert)
-_STEP = np.array([1e-6, 1e-5, 1.0, 1.0])  # central-difference steps [rad, rad/s, Pa, Pa]
-_STEP_U = 1.0                            # [Pa]
+#: Central-difference steps of the state [rad, rad/s, Pa, Pa, -, -] and of the commands [Pa].
+_STEP = np.array([1e-6, 1e-5, 1.0, 1.0, 1e-6, 1e-6])
+_STEP_U = 1.0
 
 _compile = numba.njit(cache=True, nogil=True)
 
 
-def _one_step(prior: PlantParams, x4, u, dt: float, n_sub: int):
-    """The prior's map over one control step for states (M, 4) and constant commands (M, 2)."""
-    x = np.zeros((x4.shape[0], 6))
-    x[:, :4] = x4
+def state_size(prior: PlantParams) -> int:
+    """States the learner linearises the prior on: 4 (angle, rate, p_a, p_b) for the regulator
+    lag, whose spool states are inert, and 6 (the two spool openings too) for valve flow."""
+    return 6 if prior.pneumatics.model == "valve" else 4
+
+
+def _one_step(prior: PlantParams, xs, u, dt: float, n_sub: int):
+    """The prior's map over one control step for states (M, nx) and constant commands (M, 2)."""
+    nx = xs.shape[1]
+    x = np.zeros((xs.shape[0], 6))
+    x[:, :nx] = xs
     h = dt / n_sub
     for _ in range(n_sub):
         x = rk4_step(0.0, x, u, h, prior)
-    return x[:, :4]
+    return x[:, :nx]
 
 
 @_compile
 def _forward(A, B, delay, strike_index, du):
     """``dx_{k+1} = A_k dx_k + B_k du_{k-d}`` from ``dx_0 = 0`` for columns ``du`` (N, 2, M):
     angle rows (N+1, M) and the strike-sample rate row (M,)."""
-    n, m = A.shape[0], du.shape[2]
-    dx = np.zeros((4, m))
-    nxt = np.empty((4, m))
+    n, nx, m = A.shape[0], A.shape[1], du.shape[2]
+    dx = np.zeros((nx, m))
+    nxt = np.empty((nx, m))
     angles = np.zeros((n + 1, m))
     rate = np.zeros(m)
     for k in range(n):
         src = k - delay
-        for i in range(4):
-            a0, a1, a2, a3 = A[k, i, 0], A[k, i, 1], A[k, i, 2], A[k, i, 3]
+        for i in range(nx):
             for p in range(m):
-                nxt[i, p] = a0 * dx[0, p] + a1 * dx[1, p] + a2 * dx[2, p] + a3 * dx[3, p]
+                acc = A[k, i, 0] * dx[0, p]
+                for l in range(1, nx):
+                    acc += A[k, i, l] * dx[l, p]
+                nxt[i, p] = acc
             if src >= 0:
                 b0, b1 = B[k, i, 0], B[k, i, 1]
                 for p in range(m):
@@ -70,9 +84,9 @@ def _forward_on_basis(A, B, delay, strike_index, phi):
     """:func:`_forward` for the basis columns: muscle A's command ``phi[:, j]`` (column j) and
     muscle B's (column K + j) for every knot j of ``phi`` (N, K). Columns of knots no command has
     reached yet are exactly zero and are skipped; each row of ``phi`` excites its nonzero knots."""
-    n, kn = A.shape[0], phi.shape[1]
-    dx = np.zeros((4, 2 * kn))
-    nxt = np.zeros((4, 2 * kn))
+    n, nx, kn = A.shape[0], A.shape[1], phi.shape[1]
+    dx = np.zeros((nx, 2 * kn))
+    nxt = np.zeros((nx, 2 * kn))
     angles = np.zeros((n + 1, 2 * kn))
     rate = np.zeros(2 * kn)
     reached = 0                      # knots 0 .. reached-1 have been excited
@@ -83,11 +97,13 @@ def _forward_on_basis(A, B, delay, strike_index, phi):
                 if phi[src, j] != 0.0:
                     reached = j + 1
                     break
-        for i in range(4):
-            a0, a1, a2, a3 = A[k, i, 0], A[k, i, 1], A[k, i, 2], A[k, i, 3]
+        for i in range(nx):
             for side in range(2):
                 for j in range(side * kn, side * kn + reached):
-                    nxt[i, j] = a0 * dx[0, j] + a1 * dx[1, j] + a2 * dx[2, j] + a3 * dx[3, j]
+                    acc = A[k, i, 0] * dx[0, j]
+                    for l in range(1, nx):
+                        acc += A[k, i, l] * dx[l, j]
+                    nxt[i, j] = acc
             if src >= 0:
                 b0, b1 = B[k, i, 0], B[k, i, 1]
                 for j in range(reached):
@@ -107,9 +123,9 @@ def _forward_on_basis(A, B, delay, strike_index, phi):
 @_compile
 def _adjoint(A, B, delay, strike_index, w_angle, w_rate):
     """``lambda_k = A_k^T lambda_{k+1} + C_k^T w_k`` backwards; command gradient (N, 2)."""
-    n = A.shape[0]
-    lam = np.zeros(4)
-    nxt = np.zeros(4)
+    n, nx = A.shape[0], A.shape[1]
+    lam = np.zeros(nx)
+    nxt = np.zeros(nx)
     grad = np.zeros((n, 2))
     for k in range(n, 0, -1):
         lam[0] += w_angle[k]
@@ -118,18 +134,22 @@ def _adjoint(A, B, delay, strike_index, w_angle, w_rate):
         src = k - 1 - delay
         if src >= 0:
             for c in range(2):
-                grad[src, c] = B[k - 1, 0, c] * lam[0] + B[k - 1, 1, c] * lam[1] \
-                    + B[k - 1, 2, c] * lam[2] + B[k - 1, 3, c] * lam[3]
-        for i in range(4):
-            nxt[i] = A[k - 1, 0, i] * lam[0] + A[k - 1, 1, i] * lam[1] + A[k - 1, 2, i] * lam[2] \
-                + A[k - 1, 3, i] * lam[3]
+                acc = B[k - 1, 0, c] * lam[0]
+                for l in range(1, nx):
+                    acc += B[k - 1, l, c] * lam[l]
+                grad[src, c] = acc
+        for i in range(nx):
+            acc = A[k - 1, 0, i] * lam[0]
+            for l in range(1, nx):
+                acc += A[k - 1, l, i] * lam[l]
+            nxt[i] = acc
         lam, nxt = nxt, lam
     return grad
 
 
 @dataclass
 class Linearisation:
-    """``A`` (N, 4, 4), ``B`` (N, 4, 2) along a trajectory of N control steps; ``delay`` in steps;
+    """``A`` (N, nx, nx), ``B`` (N, nx, 2) along a trajectory of N control steps; ``delay`` in steps;
     ``strike_index`` the sample whose rate is an output."""
 
     A: np.ndarray
@@ -165,46 +185,86 @@ class Linearisation:
         return _adjoint(self.A, self.B, self.delay, self.strike_index, w_angle, float(w_rate))
 
 
+@_compile
+def _spools_along(pressures, commands, delay, gain, time_constant, dt, n_sub):
+    """Spool openings (N+1, 2) of a valve-flow prior along measured ``pressures`` (N+1, 2) under
+    ``commands`` (N, 2) delayed by ``delay`` control steps: RK4 on
+    :func:`~muscle_sim.pneumatics.spool_rate` with the pressure interpolated linearly between
+    samples, from closed spools at the first sample (a trial starts at rest). Before the first
+    command arrives the valves hold the starting pressure (the command before the trial)."""
+    n = commands.shape[0]
+    out = np.zeros((n + 1, 2))
+    h = dt / n_sub
+    for k in range(n):
+        src = k - delay
+        for c in range(2):
+            u = commands[src, c] if src >= 0 else pressures[0, c]
+            p0, slope = pressures[k, c], (pressures[k + 1, c] - pressures[k, c]) / n_sub
+            s = out[k, c]
+            for j in range(n_sub):
+                pa, pm, pb = p0 + j * slope, p0 + (j + 0.5) * slope, p0 + (j + 1) * slope
+                a = spool_rate(s, pa, u, gain, time_constant)
+                b = spool_rate(s + 0.5 * h * a, pm, u, gain, time_constant)
+                q = spool_rate(s + 0.5 * h * b, pm, u, gain, time_constant)
+                r = spool_rate(s + h * q, pb, u, gain, time_constant)
+                s = s + h / 6.0 * (a + 2.0 * (b + q) + r)
+            out[k + 1, c] = s
+    return out
+
+
 def measured_states(rollout, prior: PlantParams, task) -> np.ndarray:
-    """Prior states along a rollout: measured angle and rate, and measured pressures; when the
-    log has no pressures (NaN), the prior's pressure lag driven by the logged commands."""
+    """Prior states along a rollout (N+1, :func:`state_size`): measured angle and rate, and
+    measured pressures; when the log has no pressures (NaN), the prior's pressure lag driven by
+    the logged commands. A valve-flow prior's spool openings follow from those pressures and the
+    delayed commands by its spool law."""
     y = np.asarray(rollout.measured, dtype=float)
+    pn = prior.pneumatics
+    d = steps_of_delay(pn.delay, task.dt)
     x = y[:, :4].copy()
     if not np.all(np.isfinite(x[:, 2:4])):
-        pn = prior.pneumatics
-        d = steps_of_delay(pn.delay, task.dt)
         p = x[0, 2:4] if np.all(np.isfinite(x[0, 2:4])) else rollout.command[0]
         alpha = 1.0 - np.exp(-task.dt / pn.lag_time_constant)
         for k in range(x.shape[0]):
             x[k, 2:4] = p
             u = rollout.command[max(k - d, 0)]
             p = p + alpha * (np.clip(u, 0.0, pn.supply_pressure) - p)
-    return x
+    if state_size(prior) == 4:
+        return x
+    commands = np.ascontiguousarray(np.asarray(rollout.command, dtype=float)[: x.shape[0] - 1])
+    spools = _spools_along(np.ascontiguousarray(x[:, 2:4]), commands, d, pn.valve_gain, pn.valve_time_constant,
+                           task.dt, task.n_substeps)
+    return np.hstack([x, spools])
 
 
 def linearise(prior: PlantParams, states, commands, task, delay_steps: int | None = None) -> Linearisation:
-    """Linearise the prior's one-step map at ``states`` (N+1, 4) under the delayed ``commands``
-    (N, 2): central differences, every sample and direction in one batched RK4 call."""
+    """Linearise the prior's one-step map at ``states`` (N+1, :func:`state_size` or more columns;
+    a full simulated state is cut to the linearised ones) under the delayed ``commands`` (N, 2):
+    central differences, every sample and direction in one batched RK4 call."""
+    nx = state_size(prior)
     states = np.asarray(states, dtype=float)
+    if states.ndim != 2 or states.shape[1] < nx:
+        raise ValueError(f"states: shape {states.shape} is not allowed; this prior needs (N+1, {nx}) "
+                         f"(see measured_states)")
+    states = states[:, :nx]
     commands = np.asarray(commands, dtype=float)
     n = commands.shape[0]
     d = steps_of_delay(prior.pneumatics.delay, task.dt) if delay_steps is None else delay_steps
     x = states[:n]
     u = np.vstack([np.repeat(commands[:1], d, axis=0), commands])[:n] if d else commands
-    m = 2 * (_NX + 2)
+    m = 2 * (nx + 2)
     X = np.repeat(x[:, None, :], m, axis=1)
     U = np.repeat(u[:, None, :], m, axis=1)
-    for i in range(_NX):
+    for i in range(nx):
         X[:, 2 * i, i] += _STEP[i]
         X[:, 2 * i + 1, i] -= _STEP[i]
     for i in range(2):
-        U[:, 2 * (_NX + i), i] += _STEP_U
-        U[:, 2 * (_NX + i) + 1, i] -= _STEP_U
-    out = _one_step(prior, X.reshape(-1, _NX), U.reshape(-1, 2), task.dt, task.n_substeps).reshape(n, m, _NX)
-    A = np.empty((n, _NX, _NX))
-    B = np.empty((n, _NX, 2))
-    for i in range(_NX):
+        U[:, 2 * (nx + i), i] += _STEP_U
+        U[:, 2 * (nx + i) + 1, i] -= _STEP_U
+    out = _one_step(prior, X.reshape(-1, nx), U.reshape(-1, 2), task.dt, task.n_substeps).reshape(n, m, nx)
+    A = np.empty((n, nx, nx))
+    B = np.empty((n, nx, 2))
+    for i in range(nx):
         A[:, :, i] = (out[:, 2 * i] - out[:, 2 * i + 1]) / (2 * _STEP[i])
     for i in range(2):
-        B[:, :, i] = (out[:, 2 * (_NX + i)] - out[:, 2 * (_NX + i) + 1]) / (2 * _STEP_U)
+        B[:, :, i] = (out[:, 2 * (nx + i)] - out[:, 2 * (nx + i) + 1]) / (2 * _STEP_U)
     return Linearisation(A, B, d, task.strike_index)

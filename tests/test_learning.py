@@ -82,12 +82,23 @@ def _prior_linearised(setup, n, strike_time):
     _, _, cmd = strike_commands(setup, n_steps=n)
     x0 = initial_state(prior, task.home_angle, hold)
     traj = simulate(prior, x0, cmd, task.dt, task.n_substeps, u_before=hold)
-    return hold, cmd, x0, linearise(prior, traj[:, :4], cmd, replace(task, strike_time=strike_time))
+    return hold, cmd, x0, linearise(prior, traj, cmd, replace(task, strike_time=strike_time))
+
+
+def _demo_with_prior_pressure_model(model: str) -> Setup:
+    import yaml
+
+    raw = yaml.safe_load(DEMO.read_text())
+    raw["prior"]["pressure_model"] = model
+    return Setup.from_config(raw)
 
 
 def test_adjoint_and_forward_sensitivity_agree_with_finite_differences_of_the_prior():
     # Reference: central finite differences of the prior model's simulation (integrate.simulate)
     # along its own noise-free trajectory; adjoint identity <G a, b> = <a, G^T b> to 1e-10.
+    # (The regulator-lag prior is smooth along it; the valve-flow prior's spools cross their
+    # closed position, where the flow law has a kink, so its lifted map is checked step by step
+    # in the next test.)
     setup = Setup.from_config(DEMO)
     prior, task = setup.prior, setup.task
     n = 150
@@ -104,6 +115,54 @@ def test_adjoint_and_forward_sensitivity_agree_with_finite_differences_of_the_pr
     fd = (plus[:, 0] - minus[:, 0]) / (2 * h)
     # tolerance: 1e-4 of the response (central differences of an RK4 map)
     assert np.max(np.abs(ang - fd)) < 1e-4 * np.max(np.abs(fd)) + 1e-12
+
+
+def test_valve_prior_linearisation_carries_the_spools_the_simulator_carries():
+    # Reference: the prior's own noise-free simulation (integrate.simulate, six states) and
+    # central differences of its one-step map (integrate.Stepper, steps as in linearise) from the
+    # FULL simulated state. The spool openings are not measured: measured_states must rebuild them
+    # from the sampled pressures and delayed commands by the same spool law (to 0.01 of the full
+    # opening: the pressure is interpolated linearly between samples), and the
+    # linearisation must then equal the one-step map's derivatives (1e-6 relative: the same
+    # differences of the same map). Linearising at closed spools, as if they were inert, misses
+    # B by far more.
+    from types import SimpleNamespace
+
+    from controllers.sensitivity import measured_states, state_size
+    from muscle_sim.integrate import Stepper
+
+    setup = _demo_with_prior_pressure_model("valve")
+    prior, task = setup.prior, setup.task
+    assert state_size(prior) == 6 and state_size(Setup.from_config(DEMO).prior) == 4
+    n = 150
+    hold, cmd, x0, _ = _prior_linearised(setup, n, 0.1)
+    traj = simulate(prior, x0, cmd, task.dt, task.n_substeps, u_before=hold)
+    # the logged command column: the first command stands for the hold before it acts
+    rollout = SimpleNamespace(measured=traj[:, :4], command=np.vstack([cmd, cmd[-1:]]))
+    rebuilt = measured_states(rollout, prior, replace(task, strike_time=0.1))
+    assert rebuilt.shape == (n + 1, 6)
+    delay = round(prior.pneumatics.delay / task.dt)
+    np.testing.assert_allclose(rebuilt[:, 4:], traj[:, 4:], rtol=0, atol=1e-2)
+    lin = linearise(prior, traj, cmd, replace(task, strike_time=0.1))
+
+    def one_step(x, u):
+        stepper = Stepper(prior, task.dt, task.n_substeps)
+        stepper.reset(x, u_before=u)
+        return stepper.step(u).copy()
+
+    steps = np.array([1e-6, 1e-5, 1.0, 1.0, 1e-6, 1e-6])
+    for k in (70, 100, 130, 140):
+        u = cmd[k - delay]
+        assert abs(traj[k, 4]) + abs(traj[k, 5]) > 0.2          # spools open: the test can see them
+        B = np.column_stack([(one_step(traj[k], u + e) - one_step(traj[k], u - e)) / 2.0 for e in np.eye(2)])
+        A = np.column_stack([(one_step(traj[k] + s * e, u) - one_step(traj[k] - s * e, u)) / (2 * s)
+                             for s, e in zip(steps, np.eye(6))])
+        np.testing.assert_allclose(lin.B[k], B, rtol=1e-6, atol=1e-6 * np.max(np.abs(B)))
+        np.testing.assert_allclose(lin.A[k], A, rtol=1e-6, atol=1e-6 * np.max(np.abs(A)))
+        closed = traj[k].copy()
+        closed[4:] = 0.0
+        B_closed = np.column_stack([(one_step(closed, u + e) - one_step(closed, u - e)) / 2.0 for e in np.eye(2)])
+        assert np.max(np.abs(B_closed[:4] - B[:4])) > 1e-3 * np.max(np.abs(B[:4]))
 
 
 def test_learned_beats_model_only_on_the_demo_and_stays_within_limits(tmp_path):
