@@ -17,7 +17,12 @@ Parameters (named as the ``prior`` config keys that set them):
 ``pressure_time_constant`` time constant of the first-order pressure lag              s
 ``pressure_delay``         command dead time                                          s
 ``force_scale``            multiplier on the muscle tension                           -
+``sonic_conductance``      ISO 6358 sonic conductance C of the valves (valve-flow     m^3/(s Pa)
+                           prior only: a datasheet value, often off by tens of %)
 =========================  ========================================================  ==========
+
+Pressure law. :func:`select_pressure_law` fits the prior with each pressure law (regulator lag,
+valve flow) and keeps the one whose predicted pressures match the logged ones clearly better.
 
 Stages. The prior's first-order lag makes its pressures independent of the motion. So when every
 trial logs both pressures, the pressure response (dead time, time constant) is fitted to the
@@ -79,19 +84,19 @@ from muscle_sim.params import PlantParams
 
 #: Identifiable parameters, most trusted first; when the data cannot tell parameters apart the
 #: last of them in this order is released first.
-PARAMETERS = ("pressure_delay", "pressure_time_constant", "payload_mass", "viscous_damping",
-              "coulomb_torque", "payload_radius", "force_scale")
+PARAMETERS = ("pressure_delay", "pressure_time_constant", "sonic_conductance", "payload_mass",
+              "viscous_damping", "coulomb_torque", "payload_radius", "force_scale")
 
 #: SI unit of each parameter.
 SI_UNITS = {"payload_mass": "kg", "payload_radius": "m", "viscous_damping": "N m s/rad",
             "coulomb_torque": "N m", "pressure_time_constant": "s", "pressure_delay": "s",
-            "force_scale": ""}
+            "force_scale": "", "sonic_conductance": "m^3/(s Pa)"}
 
 #: Units people read (config and CLI): parameter -> (unit, SI value per unit).
 DISPLAY_UNITS = {"payload_mass": ("kg", 1.0), "payload_radius": ("mm", 1e-3),
                  "viscous_damping": ("N m s/rad", 1.0), "coulomb_torque": ("N m", 1.0),
                  "pressure_time_constant": ("ms", 1e-3), "pressure_delay": ("ms", 1e-3),
-                 "force_scale": ("", 1.0)}
+                 "force_scale": ("", 1.0), "sonic_conductance": ("dm^3/(s bar)", 1e-8)}
 
 _GRAVITY = 9.80665          # standard gravity [m/s^2] (CGPM 1901), as config.py builds the prior
 _ANGLE_FLOOR = math.radians(0.01)   # noise floors when no sensor noise is given [rad], [Pa]
@@ -207,7 +212,8 @@ def _prior_values(prior: PlantParams, geo: _Geometry) -> dict:
     return {"payload_mass": j.payload_inertia / geo.radius ** 2 if geo.radius > 0 else 0.0,
             "payload_radius": geo.radius, "viscous_damping": j.viscous_damping,
             "coulomb_torque": j.coulomb_torque, "pressure_time_constant": pn.lag_time_constant,
-            "pressure_delay": pn.delay, "force_scale": prior.muscle.force_scale}
+            "pressure_delay": pn.delay, "force_scale": prior.muscle.force_scale,
+            "sonic_conductance": pn.sonic_conductance}
 
 
 def _apply(prior: PlantParams, values: dict, geo: _Geometry) -> PlantParams:
@@ -228,6 +234,8 @@ def _apply(prior: PlantParams, values: dict, geo: _Geometry) -> PlantParams:
         pn_changes["lag_time_constant"] = float(values["pressure_time_constant"])
     if "pressure_delay" in values:
         pn_changes["delay"] = float(values["pressure_delay"])
+    if "sonic_conductance" in values:
+        pn_changes["sonic_conductance"] = float(values["sonic_conductance"])
     if joint_changes:
         j = replace(j, **joint_changes)
     if pn_changes:
@@ -460,6 +468,9 @@ def _coordinates(names, base, floors, geo, h) -> _Coordinates:
         elif n == "force_scale":
             scales[n] = 1.0
             lower[n], upper[n] = 0.05, 20.0
+        elif n == "sonic_conductance":          # a datasheet value: within a factor of 10 of it
+            scales[n] = base[n]
+            lower[n], upper[n] = 0.1, 10.0
     return _Coordinates(list(names), scales, lower, upper)
 
 
@@ -478,7 +489,7 @@ def _floors(prior: PlantParams, trials, task, geo: _Geometry) -> dict:
     return {"payload_mass": inertia * _EFFECT_ANGLE / swing / radius ** 2,
             "payload_radius": 0.1 * radius, "viscous_damping": torque / rate, "coulomb_torque": torque,
             "pressure_time_constant": task.dt, "pressure_delay": max(prior.pneumatics.lag_time_constant, task.dt),
-            "force_scale": 1.0}
+            "force_scale": 1.0, "sonic_conductance": prior.pneumatics.sonic_conductance}
 
 
 # --- one fit at a fixed dead time ---------------------------------------------------------------
@@ -805,6 +816,8 @@ def identify_prior(rollouts, prior: PlantParams, task, *, sensors=None, payload_
         structural["payload_radius"] = "not fitted: fitting the radius needs payload_mass fitted too"
     if prior.pneumatics.model != "lag":
         structural["pressure_time_constant"] = "not fitted: the prior's pressure model has no lag time constant"
+    else:
+        structural["sonic_conductance"] = "not fitted: the prior's pressure model (lag) has no valve flow"
     free = [n for n in PARAMETERS if n in requested and n not in structural]
 
     try:
@@ -813,7 +826,7 @@ def identify_prior(rollouts, prior: PlantParams, task, *, sensors=None, payload_
         return _failed(prior, geo, base, requested, structural, problem, -3)
     r_before = problem.residuals(prior)
 
-    together = problem.nuisance != list(range(len(trials))) or prior.pneumatics.model != "lag"
+    together = problem.nuisance != list(range(len(trials)))
     if together:
         stages = [("", free, True)]
     else:
@@ -834,7 +847,7 @@ def identify_prior(rollouts, prior: PlantParams, task, *, sensors=None, payload_
     return _result(prior, geo, base, requested, structural, outcomes, current, starts, problem, before, r_before)
 
 
-_PRESSURE_PARAMETERS = ("pressure_delay", "pressure_time_constant")
+_PRESSURE_PARAMETERS = ("pressure_delay", "pressure_time_constant", "sonic_conductance")
 
 
 @dataclass
@@ -1042,9 +1055,31 @@ def _setup_geometry(setup) -> dict:
     return {"payload_radius": radius, "gravity": cfg.get("plant.joint.hanging_angle") is not None}
 
 
+#: Pressure laws a prior can take: the first-order regulator lag and the ISO 6358 valve flow
+#: with the config's valve data (``plant.pneumatics``: sonic conductance, critical ratio, spool).
+PRESSURE_LAWS = ("lag", "valve")
+#: :func:`select_pressure_law` moves to the other law only when its fitted residual RMS is below
+#: this share of the configured law's: a clear preference of the data, not a tie broken by noise.
+LAW_PREFERENCE = 0.8
+
+
+def with_pressure_law(prior: PlantParams, law: str) -> PlantParams:
+    """``prior`` with its pressure law set to ``law`` (one of :data:`PRESSURE_LAWS`); every
+    parameter, the dead time included, stays."""
+    if law not in PRESSURE_LAWS:
+        raise ParameterError(f"pressure_model: {law!r} is not allowed; must be one of {', '.join(PRESSURE_LAWS)}")
+    if prior.pneumatics.model == law:
+        return prior
+    return PlantParams(prior.muscle, prior.joint, replace(prior.pneumatics, model=law))
+
+
 def prior_from_values(setup, values: dict) -> PlantParams:
-    """``setup.prior`` with the identified ``values`` (as kept in a learner state) put in."""
-    return apply_prior_values(setup.prior, values, **_setup_geometry(setup)) if values else setup.prior
+    """``setup.prior`` with the identified ``values`` (as kept in a learner state) put in; an entry
+    ``pressure_model`` (see :func:`select_pressure_law`) sets the pressure law first."""
+    values = dict(values or {})
+    law = values.pop("pressure_model", None)
+    prior = setup.prior if law is None else with_pressure_law(setup.prior, law)
+    return apply_prior_values(prior, values, **_setup_geometry(setup)) if values else prior
 
 
 def update_prior(setup, rollouts, prior: PlantParams | None = None, **options):
@@ -1060,12 +1095,48 @@ def update_prior(setup, rollouts, prior: PlantParams | None = None, **options):
     return updated_prior(result), result
 
 
+def select_pressure_law(setup, rollouts, prior: PlantParams | None = None, **options):
+    """Which pressure law the logged pressures support: ``(law, updated prior, result)``.
+
+    The prior (default ``setup.prior``) is identified as it is and with the other law of
+    :data:`PRESSURE_LAWS` (:func:`with_pressure_law`: the dead time and every mechanical value
+    carried over). The other law is chosen only when, after its fit, the RMS error of the
+    predicted pressures is below :data:`LAW_PREFERENCE` times that of the prior's own law: the
+    law is what turns commands into pressures, so the pressure logs judge it (a proportional
+    valve's pressures depend on the flow it can pass and on the muscle's volume, and can trail a
+    fast command further than any first-order lag; a regulator answers like the lag). A plain
+    output-error model choice on a common data set, common practice in system identification
+    (Ljung 1999, System Identification, 2nd ed., ch. 16). Without logged pressures, or when the
+    other law's fit did not run, the prior's own law stays; a fit that stopped at its evaluation
+    limit still counts for the choice (its parameters are then not applied by the learner)."""
+    prior = setup.prior if prior is None else prior
+    own = prior.pneumatics.model
+    other = next(law for law in PRESSURE_LAWS if law != own)
+    fits = {}
+    for law in (own, other):
+        try:
+            fits[law] = update_prior(setup, rollouts, with_pressure_law(prior, law), **options)
+        except (ValueError, ArithmeticError):
+            continue
+
+    def pressure_error(law):
+        fit = fits.get(law)
+        return fit[1].pressure_rms[1] if fit is not None and fit[1].status >= 0 else math.nan
+
+    e_own, e_other = pressure_error(own), pressure_error(other)
+    if math.isfinite(e_other) and (not math.isfinite(e_own) or e_other < LAW_PREFERENCE * e_own):
+        return (other, *fits[other])
+    if own in fits:
+        return (own, *fits[own])
+    return own, prior, None
+
+
 def config_snippet(result: IdentificationResult) -> str:
     """A ``prior:`` section with units to paste into a config: the excited parameters' values;
     the others as comments saying why they were kept."""
     keys = {"payload_mass": "{:.4g} kg", "payload_radius": "{:.4g} mm", "viscous_damping": "{:.4g} N m s/rad",
             "coulomb_torque": "{:.4g} N m", "pressure_time_constant": "{:.4g} ms",
-            "pressure_delay": "{:.4g} ms", "force_scale": "{:.4g}"}
+            "pressure_delay": "{:.4g} ms", "force_scale": "{:.4g}", "sonic_conductance": "{:.4g} dm^3/(s bar)"}
     lines = ["# prior fitted by pamjoint identify (values +- one standard deviation)", "prior:"]
     for name, p in result.parameters.items():
         unit, scale = DISPLAY_UNITS[name]

@@ -28,7 +28,7 @@ from muscle_sim.threads import single_blas_thread
 
 from .base import PressureProfile
 from .basis import HatBasis
-from .identification import prior_from_values, update_prior
+from .identification import prior_from_values, select_pressure_law, update_prior
 from .sensitivity import linearise, measured_states
 
 #: Muehlebach & Jordan (2022) use alpha T = 0.4; the learner's step is T = 1.
@@ -91,6 +91,7 @@ class LearningSettings:
     max_pressure: float | None = None
     update_prior: bool = True
     prior_blend: float = 0.5
+    pressure_law: str = "keep"
     spsa_step: float = 2e4
     spsa_perturbation: float = 1e4
 
@@ -378,14 +379,21 @@ class GradientLearner:
         values = dict(state.extra.get("prior_values") or {})
         if not self.settings.update_prior or len(rollout.t) < self.task.n_steps + 1:
             return values, []
-        try:
-            _, result = update_prior(self.setup, [rollout], self.prior_for(state))
-        except (ValueError, ArithmeticError):
-            return values, []
-        if not result.success:
-            return values, []
-        blend = self.settings.prior_blend
         changed = []
+        try:
+            if self.settings.pressure_law == "select" and "pressure_model" not in values:
+                # the first full trial also decides the pressure law, once: the state keeps it
+                law, _, result = select_pressure_law(self.setup, [rollout], self.prior_for(state))
+                values["pressure_model"] = law
+                if law != self.setup.prior.pneumatics.model:
+                    changed.append("pressure_model")
+            else:
+                _, result = update_prior(self.setup, [rollout], self.prior_for(state))
+        except (ValueError, ArithmeticError):
+            return values, changed
+        if result is None or not result.success:
+            return values, changed
+        blend = self.settings.prior_blend
         for name, estimate in result.values().items():
             old = result.parameters[name].prior
             if math.isfinite(estimate) and estimate != old:

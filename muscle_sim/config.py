@@ -183,6 +183,9 @@ PRIOR_KEYS = _section(
                                **_POS),
     pressure_delay=Key("time", "command delay the prior assumes (null: the plant's)", default=None, unit="ms",
                        **_NONNEG),
+    sonic_conductance=Key("sonic_conductance", "ISO 6358 sonic conductance C of the valves a valve-flow prior "
+                          "assumes (null: plant.pneumatics.sonic_conductance)", default=None,
+                          unit="dm^3/(s bar)", **_POS),
 )
 
 TASK_KEYS = _section(
@@ -232,6 +235,9 @@ LEARNING_KEYS = _section(
     update_prior=Key("bool", "re-identify the prior from each trial and linearise the updated prior", default=True),
     prior_blend=Key("dimensionless", "share of the way to a new identified value the prior moves per trial",
                     default=0.5, low=0.0, high=1.0, low_open=True),
+    pressure_law=Key("str", "select (the first trial's logs choose the prior's pressure law, regulator lag or the "
+                     "config's valve flow, by which fits them clearly better) or keep (prior.pressure_model as set)",
+                     default="keep", choices=("select", "keep")),
     spsa_step=Key("pressure", "SPSA: size of the first update", default=2e4, unit="kPa", **_POS),
     spsa_perturbation=Key("pressure", "SPSA: perturbation c of the first trials", default=1e4, unit="kPa", **_POS),
 )
@@ -512,13 +518,13 @@ def joint_params(cfg: Config, payload: bool = True, inertia_error: float = 0.0,
 
 
 def pneumatic_params(cfg: Config, model: str | None = None, lag_time_constant: float | None = None,
-                     delay: float | None = None) -> PneumaticParams:
+                     delay: float | None = None, sonic_conductance: float | None = None) -> PneumaticParams:
     """Build :class:`PneumaticParams` from ``plant.pneumatics`` (tube -> dead volume and delay)."""
     pn = cfg.get("plant.pneumatics")
     plant_delay = tube_delay(pn["tube_length"], pn["temperature"]) + pn["valve_dead_time"]
     values = dict(
         supply_pressure=pn["supply_pressure"], model=model or pn["model"], atmosphere=pn["atmosphere"],
-        temperature=pn["temperature"], sonic_conductance=pn["sonic_conductance"],
+        temperature=pn["temperature"], sonic_conductance=pn["sonic_conductance"] if sonic_conductance is None else sonic_conductance,
         critical_ratio=pn["critical_ratio"], subsonic_index=pn["subsonic_index"],
         valve_time_constant=pn["valve_time_constant"], valve_gain=pn["valve_gain"],
         dead_volume=tube_volume(pn["tube_length"], pn["tube_bore"]) + pn["fitting_volume"],
@@ -553,7 +559,7 @@ def prior_params(cfg: Config) -> PlantParams:
                          payload_radius=pr["payload_radius"], viscous_damping=pr["viscous_damping"],
                          coulomb_torque=pr["coulomb_torque"])
     pneu = pneumatic_params(cfg, model=pr["pressure_model"], lag_time_constant=pr["pressure_time_constant"],
-                            delay=pr["pressure_delay"])
+                            delay=pr["pressure_delay"], sonic_conductance=pr["sonic_conductance"])
     return _build_plant(muscle, joint, pneu, "prior")
 
 

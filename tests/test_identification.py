@@ -15,8 +15,8 @@ import pytest
 import yaml
 
 from controllers.base import PressureProfile
-from controllers.identification import (apply_prior_values, config_snippet, identify_prior, update_prior,
-                                        updated_prior)
+from controllers.identification import (LAW_PREFERENCE, apply_prior_values, config_snippet, identify_prior,
+                                        select_pressure_law, update_prior, updated_prior, with_pressure_law)
 from controllers.simple import HoldPressures, ReplayProfile
 from controllers.tuning import start_profile
 from muscle_sim import cli, config
@@ -270,3 +270,36 @@ def test_cli_bad_csv_and_flags_are_one_line_errors_with_exit_2(log_file, tmp_pat
     assert not (tmp_path / "o" / "identification.json").exists()
     _fails(["identify", "--config", str(DEMO), "--rollout", str(log_file), "--fit", "payload,delay"],
            "--fit: 'payload' is not allowed")
+
+
+def test_valve_prior_sonic_conductance_and_delay_are_recovered_from_its_own_log(known):
+    # reference: the generating values (closed loop of our own simulator): a valve-flow prior whose
+    # valves pass 70 % of the datasheet's sonic conductance (ISO 6358 C) and 9 ms of dead time; 2 %
+    prior = with_pressure_law(known.prior, "valve")
+    c_true = 0.7 * prior.pneumatics.sonic_conductance
+    truth = apply_prior_values(prior, {"sonic_conductance": c_true, "pressure_delay": 0.009}, payload_radius=RADIUS)
+    result = identify_prior([_log(known, truth)], prior, known.task, payload_radius=RADIUS,
+                            parameters=["sonic_conductance", "pressure_delay"])
+    assert result.parameters["sonic_conductance"].value == pytest.approx(c_true, rel=0.02)
+    assert result.parameters["pressure_delay"].value == pytest.approx(0.009, rel=0.02)
+    # a lag prior has no valve flow to fit
+    lag = identify_prior([_log(known, truth)], known.prior, known.task, payload_radius=RADIUS,
+                         parameters=["sonic_conductance", "pressure_delay"])
+    assert not lag.parameters["sonic_conductance"].fitted
+    assert "no valve flow" in lag.parameters["sonic_conductance"].note
+
+
+def test_pressure_law_is_chosen_by_the_law_that_made_the_pressures(known):
+    # Reference: the law that generated the log. A lag prior's own log (lag 15 -> 19.5 ms, delay
+    # 6 -> 9 ms) keeps the lag; a log of the valve-flow form of the same prior (ISO 6358 flow,
+    # its valves at 70 % of the datasheet C) moves to the valve law.
+    lag_truth = apply_prior_values(known.prior, {"pressure_time_constant": 0.0195, "pressure_delay": 0.009},
+                                   payload_radius=RADIUS)
+    law, _, result = select_pressure_law(known, [_log(known, lag_truth)], known.prior)
+    assert law == "lag" and result.prior.pneumatics.model == "lag"
+    valve = with_pressure_law(known.prior, "valve")
+    valve_truth = apply_prior_values(valve, {"sonic_conductance": 0.7 * valve.pneumatics.sonic_conductance},
+                                     payload_radius=RADIUS)
+    law, prior, result = select_pressure_law(known, [_log(known, valve_truth)], known.prior)
+    assert law == "valve" and prior.pneumatics.model == "valve"
+    assert result.pressure_rms[1] < LAW_PREFERENCE * 5e2      # within the pressure noise floor (0.5 kPa)
