@@ -38,6 +38,16 @@ CONSTRAINT_ALPHA = 0.4
 #: ``grad g_i^T d + alpha T g_i >= 0`` holds to this [rad] (0.01 deg).
 ANGLE_CONDITION_TOLERANCE = math.radians(0.01)
 
+#: Samples this close to an angle limit [rad] (1 deg) also carry its velocity-level condition: for
+#: ``g_i >= 0`` the condition ``grad g_i^T d >= -alpha T g_i`` lets the step approach the limit but,
+#: to first order, not cross it, so a swing inside the limit is not pushed past it by the next
+#: step (the active set of Muehlebach & Jordan widened by a band against the prior's error).
+LIMIT_BAND = math.radians(1.0)
+
+#: Solves of one step, each adding the samples its predecessor was predicted to carry past a
+#: limit (constraint screening; the first solve has only the trial's own near or broken limits).
+SCREEN_ROUNDS = 3
+
 #: The trust region's ratio test never shrinks the step scale below this (the guard may).
 MIN_RATIO_SCALE = 1.0 / 16
 #: Achieved-over-predicted error change below which the step scale halves, and above which it
@@ -297,6 +307,7 @@ class GradientLearner:
         j = setup.prior.joint
         self.angle_low = j.lower_stop + settings.angle_margin
         self.angle_high = j.upper_stop - settings.angle_margin
+        self._limit_stride = max(1, int(round(0.004 / self.task.dt)))   # a sample every 4 ms
         self._priors = {}
         # the cost of an error of guard_floor at every sample: below it no trial counts as diverged
         self._guard_floor = 0.5 * float(np.sum(self.objective.w_angle)) * settings.guard_floor ** 2
@@ -324,16 +335,18 @@ class GradientLearner:
 
     def _violated(self, g_angle, y):
         """Rows ``M v >= h`` of the Muehlebach–Jordan velocity-level constraints for the angle
-        limits violated in the measured trial (``g_i >= 0`` form; a sample every 4 ms is enough at
-        the knot spacing); ``None`` when nothing is violated."""
-        idx = np.arange(len(y))[:: max(1, int(round(0.004 / self.task.dt)))]
-        lo = idx[y[idx] < self.angle_low]
-        hi = idx[y[idx] > self.angle_high]
+        limits the measured trial violated or came within :data:`LIMIT_BAND` of (``g_i >= 0``
+        form; a sample every 4 ms is enough at the knot spacing), and whether any was violated;
+        ``None`` when no sample came near a limit."""
+        idx = np.arange(len(y))[:: self._limit_stride]
+        low, high = self.angle_low, self.angle_high
+        lo = idx[y[idx] < low + LIMIT_BAND]
+        hi = idx[y[idx] > high - LIMIT_BAND]
         if lo.size + hi.size == 0:
             return None
         M = np.vstack([g_angle[lo], -g_angle[hi]])
-        g = np.concatenate([y[lo] - self.angle_low, self.angle_high - y[hi]])
-        return M, -CONSTRAINT_ALPHA * g
+        g = np.concatenate([y[lo] - low, high - y[hi]])
+        return M, -CONSTRAINT_ALPHA * g, bool(np.any(g < 0.0))
 
     def _solve_step(self, A, b, theta, limits):
         """``argmin 1/2 d^T A d - b^T d`` with ``theta + d`` in the pressure box and the violated
@@ -432,15 +445,44 @@ class GradientLearner:
         W, w_rate = self.objective.w_angle, self.objective.w_rate
         return 0.25 * float(np.sum(W * miss * miss) + w_rate * miss_rate * miss_rate)
 
-    def _step_for(self, H, grad, theta, scale, limits0):
-        """Step at ``scale`` (norm-optimal: the change penalty grows as the scale shrinks)."""
+    def _screened(self, g_angle, y, applied):
+        """Rows ``M d >= h`` (position level: the predicted angle stays inside) for the samples that
+        the last trial kept clear of the limits by more than :data:`LIMIT_BAND` but that the step
+        ``applied`` is predicted to carry past one; ``None`` when none is."""
+        idx = np.arange(min(len(y), g_angle.shape[0]))[:: self._limit_stride]
+        y0 = y[idx]
+        new = y0 + g_angle[idx] @ applied
+        lo = idx[(y0 >= self.angle_low + LIMIT_BAND) & (new < self.angle_low)]
+        hi = idx[(y0 <= self.angle_high - LIMIT_BAND) & (new > self.angle_high)]
+        if lo.size + hi.size == 0:
+            return None
+        return (np.vstack([g_angle[lo], -g_angle[hi]]),
+                -np.concatenate([y[lo] - self.angle_low, self.angle_high - y[hi]]))
+
+    def _step_for(self, H, grad, theta, scale, limits0, g_angle, y):
+        """Step at ``scale`` (norm-optimal: the change penalty grows as the scale shrinks).
+
+        The angle limits: the velocity-level rows of the samples the trial brought near or past a
+        limit (the step is ``d = T v``, so a broken limit is restored by ``alpha T g_i``), plus,
+        screened from the step's own prediction for up to :data:`SCREEN_ROUNDS` solves, a
+        position-level row for each sample the step would carry past a limit: the first-order
+        condition guards only the samples it is written for, and a step may lift another part of
+        the swing past the limit."""
         if self.settings.method == "gradient":
             A, b = np.eye(H.shape[0]), scale * gradient_step(H, grad)
         else:
             reg = self.settings.regularisation * float(np.trace(H)) / H.shape[0]
             A, b = (H + reg * np.eye(H.shape[0])) / scale, grad
-        limits = None if limits0 is None else (limits0[0], scale * limits0[1])   # d = T v: alpha T g_i
-        return self._solve_step(A, b, theta, limits)
+        rows = None if limits0 is None else (limits0[0], scale * limits0[1])   # d = T v: alpha T g_i
+        for _ in range(SCREEN_ROUNDS):
+            step, active, solved = self._solve_step(A, b, theta, rows)
+            if not solved:      # the trial's own limits cannot be met: no more rows to weigh against
+                break
+            extra = self._screened(g_angle, y, np.clip(theta + step, self.p_low, self.p_high) - theta)
+            if extra is None:
+                break
+            rows = extra if rows is None else (np.vstack([rows[0], extra[0]]), np.concatenate([rows[1], extra[1]]))
+        return step, active, solved
 
     @single_blas_thread
     def update(self, rollout, profile: PressureProfile, state: LearnerState):
@@ -528,13 +570,14 @@ class GradientLearner:
             # a decrease; or, while the trial broke an angle limit, the step that restores the
             # limit (or violates it least) at a tracking price below the guard factor: feasibility
             # first, the limits keep the paddle off the stops
-            return predicted_cost < cost or (limits is not None
+            return predicted_cost < cost or (limits is not None and limits[2]
                                                  and predicted_cost <= self.settings.guard_factor * cost)
 
         step, active, solved, predicted, tries = 0.0, 0, False, cost, 0
         new_theta = theta
         while finite and tries < 5:
-            step, active, solved = self._step_for(H, grad, theta, scale * learning_gain, limits)
+            step, active, solved = self._step_for(H, grad, theta, scale * learning_gain, limits, g_angle,
+                                                  rollout.measured[:, 0])
             new_theta = np.clip(theta + step, self.p_low, self.p_high)
             predicted = predict(new_theta - theta)
             tries += 1
