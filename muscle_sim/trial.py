@@ -194,6 +194,18 @@ def _account(y, x, k, read, active, fresh, ref, consts, totals, fault, reward, t
 
 
 @law
+def _log_rows(log, k, offset, live, values):
+    """``log[i, min(k[i] + offset, last)] = values[i]`` for each member where ``live`` is true
+    (``last`` the log's last sample): the recorded trial, one compiled call per step."""
+    last = log.shape[1] - 1
+    for i in range(k.shape[0]):
+        if live[i]:
+            j = min(k[i] + offset, last)
+            for c in range(values.shape[1]):
+                log[i, j, c] = values[i, c]
+
+
+@law
 def _take_rows(buf, pos, size, left, live, out, empty):
     """Copy each live member's next buffered noise row into ``out`` and return 0; if some live
     member's buffer is used up, mark those in ``empty``, take nothing and return their number."""
@@ -438,7 +450,7 @@ class TrialBatch:
             self.fault[bad] = DIVERGED
             self._fault_at[bad] = self.k[bad] * self.task.dt
         if self.record:
-            self._u_log[np.arange(self.members), np.minimum(self.k - 1, self.task.n_steps)] = self.applied
+            _log_rows(self._u_log, self.k, -1, self._all, self.applied)
 
     def read(self, members=None) -> np.ndarray:
         """Readings of every member (or those where the mask ``members`` is true) that did not
@@ -454,8 +466,7 @@ class TrialBatch:
                                 self._low, self._high, self.obs):
             noise.refill_empty()
         if self.record:
-            rows = np.flatnonzero(self._live)
-            self._y_log[rows, np.minimum(self.k[rows], self.task.n_steps)] = self.y[rows]
+            _log_rows(self._y_log, self.k, 0, self._live, self.y)
         return self.y
 
     def fault_text(self, i: int):
