@@ -339,14 +339,18 @@ class GradientLearner:
         form; a sample every 4 ms is enough at the knot spacing), and whether any was violated;
         ``None`` when no sample came near a limit."""
         idx = np.arange(len(y))[:: self._limit_stride]
-        low, high = self.angle_low, self.angle_high
-        lo = idx[y[idx] < low + LIMIT_BAND]
-        hi = idx[y[idx] > high - LIMIT_BAND]
+        lo = idx[y[idx] < self.angle_low + LIMIT_BAND]
+        hi = idx[y[idx] > self.angle_high - LIMIT_BAND]
         if lo.size + hi.size == 0:
             return None
-        M = np.vstack([g_angle[lo], -g_angle[hi]])
-        g = np.concatenate([y[lo] - low, high - y[hi]])
+        M, g = self._limit_rows(g_angle, y, lo, hi)
         return M, -CONSTRAINT_ALPHA * g, bool(np.any(g < 0.0))
+
+    def _limit_rows(self, g_angle, y, lo, hi):
+        """``(M, g)`` of the lower-limit samples ``lo`` and upper-limit samples ``hi``: the
+        predicted angle margins are ``g + M d`` (``g >= 0`` inside the limit)."""
+        return (np.vstack([g_angle[lo], -g_angle[hi]]),
+                np.concatenate([y[lo] - self.angle_low, self.angle_high - y[hi]]))
 
     def _solve_step(self, A, b, theta, limits):
         """``argmin 1/2 d^T A d - b^T d`` with ``theta + d`` in the pressure box and the violated
@@ -456,8 +460,8 @@ class GradientLearner:
         hi = idx[(y0 <= self.angle_high - LIMIT_BAND) & (new > self.angle_high)]
         if lo.size + hi.size == 0:
             return None
-        return (np.vstack([g_angle[lo], -g_angle[hi]]),
-                -np.concatenate([y[lo] - self.angle_low, self.angle_high - y[hi]]))
+        M, g = self._limit_rows(g_angle, y, lo, hi)
+        return M, -g
 
     def _step_for(self, H, grad, theta, scale, limits0, g_angle, y):
         """Step at ``scale`` (norm-optimal: the change penalty grows as the scale shrinks).

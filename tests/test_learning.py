@@ -201,7 +201,8 @@ def test_step_keeps_every_predicted_sample_inside_the_angle_limit():
     # A swing 2 deg inside the upper limit (clear of the 1 deg band, so no row of the trial's own)
     # and an error asking for 10 deg more: the unconstrained step lifts the peak past the limit;
     # the screened step must keep the linear prediction y + G d inside it at every 4 ms sample
-    # (constraint screening, as a planner screens limit rows; tolerance 0.01 deg, the learner's).
+    # (derived from the screening rule: each solve adds the samples its predecessor carried past
+    # the limit; tolerance 0.01 deg, the learner's ANGLE_CONDITION_TOLERANCE).
     from controllers.tuning import make_learner
 
     setup = Setup.from_config(DEMO)
