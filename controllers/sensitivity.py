@@ -6,8 +6,10 @@ side, ``d`` its command delay in control steps) is linearised at the MEASURED st
 ``x_k = [angle, rate, p_a, p_b]`` for the regulator-lag prior, and with the two valve spool
 openings appended for a valve-flow prior (its spools carry the pressure response from one step to
 the next; they are not measured, so :func:`measured_states` rebuilds them from the measured
-pressures and the commands by the prior's own spool law). ``A_k = df/dx``, ``B_k = df/du`` by
-central differences of that one-step map, all samples in one batched call. The lifted map from
+pressures and the commands by the prior's own spool law). ``A_k = df/dx``, ``B_k = df/du`` are
+the exact derivatives of that one-step map (the tangent of its RK4 steps on the chain rule of
+each law's partials, :func:`muscle_sim.integrate.step_with_jacobian`), all samples in one
+compiled call. The lifted map from
 commands to outputs (angle at every sample, rate at the strike sample) then has the Jacobian
 ``G0`` whose products are computed by a forward (sensitivity) and a backward (adjoint) recursion:
 the products ``G0 v`` and ``G0^T w`` that gradient and norm-optimal iterative learning control
@@ -23,13 +25,10 @@ from dataclasses import dataclass
 import numba
 import numpy as np
 
-from muscle_sim.integrate import delay_steps as steps_of_delay, rk4_step
+from muscle_sim.integrate import delay_steps as steps_of_delay, step_with_jacobian
 from muscle_sim.params import PlantParams
+from muscle_sim.plant import N_STATE, pack
 from muscle_sim.pneumatics import spool_rate
-
-#: Central-difference steps of the state [rad, rad/s, Pa, Pa, -, -] and of the commands [Pa].
-_STEP = np.array([1e-6, 1e-5, 1.0, 1.0, 1e-6, 1e-6])
-_STEP_U = 1.0
 
 _compile = numba.njit(cache=True, nogil=True)
 
@@ -38,17 +37,6 @@ def state_size(prior: PlantParams) -> int:
     """States the learner linearises the prior on: 4 (angle, rate, p_a, p_b) for the regulator
     lag, whose spool states are inert, and 6 (the two spool openings too) for valve flow."""
     return 6 if prior.pneumatics.model == "valve" else 4
-
-
-def _one_step(prior: PlantParams, xs, u, dt: float, n_sub: int):
-    """The prior's map over one control step for states (M, nx) and constant commands (M, 2)."""
-    nx = xs.shape[1]
-    x = np.zeros((xs.shape[0], 6))
-    x[:, :nx] = xs
-    h = dt / n_sub
-    for _ in range(n_sub):
-        x = rk4_step(0.0, x, u, h, prior)
-    return x[:, :nx]
 
 
 @_compile
@@ -97,13 +85,18 @@ def _forward_on_basis(A, B, delay, strike_index, phi):
                 if phi[src, j] != 0.0:
                     reached = j + 1
                     break
+        # nxt = A_k dx column by column, the knot index innermost (contiguous, vectorised); the
+        # sum over l runs in the same order for every column
         for i in range(nx):
             for side in range(2):
-                for j in range(side * kn, side * kn + reached):
-                    acc = A[k, i, 0] * dx[0, j]
-                    for l in range(1, nx):
-                        acc += A[k, i, l] * dx[l, j]
-                    nxt[i, j] = acc
+                lo = side * kn
+                a0 = A[k, i, 0]
+                for j in range(lo, lo + reached):
+                    nxt[i, j] = a0 * dx[0, j]
+                for l in range(1, nx):
+                    a = A[k, i, l]
+                    for j in range(lo, lo + reached):
+                        nxt[i, j] += a * dx[l, j]
             if src >= 0:
                 b0, b1 = B[k, i, 0], B[k, i, 1]
                 for j in range(reached):
@@ -239,7 +232,7 @@ def measured_states(rollout, prior: PlantParams, task) -> np.ndarray:
 def linearise(prior: PlantParams, states, commands, task, delay_steps: int | None = None) -> Linearisation:
     """Linearise the prior's one-step map at ``states`` (N+1, :func:`state_size` or more columns;
     a full simulated state is cut to the linearised ones) under the delayed ``commands`` (N, 2):
-    central differences, every sample and direction in one batched RK4 call."""
+    the exact Jacobians of the prior's one-step map, every sample in one compiled call."""
     nx = state_size(prior)
     states = np.asarray(states, dtype=float)
     if states.ndim != 2 or states.shape[1] < nx:
@@ -251,20 +244,12 @@ def linearise(prior: PlantParams, states, commands, task, delay_steps: int | Non
     d = steps_of_delay(prior.pneumatics.delay, task.dt) if delay_steps is None else delay_steps
     x = states[:n]
     u = np.vstack([np.repeat(commands[:1], d, axis=0), commands])[:n] if d else commands
-    m = 2 * (nx + 2)
-    X = np.repeat(x[:, None, :], m, axis=1)
-    U = np.repeat(u[:, None, :], m, axis=1)
-    for i in range(nx):
-        X[:, 2 * i, i] += _STEP[i]
-        X[:, 2 * i + 1, i] -= _STEP[i]
-    for i in range(2):
-        U[:, 2 * (nx + i), i] += _STEP_U
-        U[:, 2 * (nx + i) + 1, i] -= _STEP_U
-    out = _one_step(prior, X.reshape(-1, nx), U.reshape(-1, 2), task.dt, task.n_substeps).reshape(n, m, nx)
-    A = np.empty((n, nx, nx))
-    B = np.empty((n, nx, 2))
-    for i in range(nx):
-        A[:, :, i] = (out[:, 2 * i] - out[:, 2 * i + 1]) / (2 * _STEP[i])
-    for i in range(2):
-        B[:, :, i] = (out[:, 2 * (nx + i)] - out[:, 2 * (nx + i) + 1]) / (2 * _STEP_U)
+    full = np.zeros((n, N_STATE))
+    full[:, :nx] = x                 # a regulator-lag prior's spools are inert: closed
+    end = np.empty((n, N_STATE))
+    jac = np.empty((n, N_STATE, N_STATE + 2))
+    step_with_jacobian(full, np.ascontiguousarray(u), pack(prior), task.dt / task.n_substeps, task.n_substeps, nx,
+                       end, jac)
+    A = np.ascontiguousarray(jac[:, :nx, :nx])
+    B = np.ascontiguousarray(jac[:, :nx, N_STATE:])
     return Linearisation(A, B, d, task.strike_index)

@@ -16,7 +16,7 @@ from .compiled import law
 from .errors import ParameterError, SimulationDiverged
 from .params import PlantParams
 from .hysteresis import breakaways, engagement, update, weights as slip_weights
-from .plant import K_PULLEY, N_STATE, pack, plant_rate, rhs
+from .plant import K_PULLEY, N_STATE, pack, plant_jacobian, plant_rate, rhs
 
 #: Angle and rate magnitudes past which a state counts as diverged [rad], [rad/s].
 ANGLE_LIMIT = 20.0
@@ -74,6 +74,75 @@ def _rk4_into(x, u, P, h, out):
         r = _rk4((x[i, 0], x[i, 1], x[i, 2], x[i, 3], x[i, 4], x[i, 5]), u[i, 0], u[i, 1], h, P, 0.0, 0.0)
         for k in range(N_STATE):
             out[i, k] = r[k]
+
+
+@law
+def _stage(x, t, u0, u1, P, nx, jac, work, dk, st):
+    """One RK4 stage of the tangent: the rate at the stage's state ``x`` and, into ``dk[st]``, its
+    tangent ``J_x t + [0 | J_u]`` for the stage's tangent ``t`` (6, 8) (``T + c h dk[st - 1]``), on
+    the first ``nx`` states and the two commands (columns ``nx..5`` stay untouched)."""
+    r = plant_jacobian(x[0], x[1], x[2], x[3], x[4], x[5], u0, u1, 0.0, 0.0, P, jac, work)
+    for i in range(nx):
+        for k in range(nx):
+            acc = jac[i, 0] * t[0, k]
+            for l in range(1, nx):
+                acc += jac[i, l] * t[l, k]
+            dk[st, i, k] = acc
+        for k in range(N_STATE, N_STATE + 2):
+            acc = jac[i, k]
+            for l in range(nx):
+                acc += jac[i, l] * t[l, k]
+            dk[st, i, k] = acc
+    return r
+
+
+@law
+def step_with_jacobian(x, u, P, h, n_sub, nx, out, jac):
+    """``n_sub`` RK4 steps of length ``h`` of :func:`~muscle_sim.plant.plant_rate` from every row of
+    ``x`` (M, 6) under its constant command ``u`` (M, 2): the end states into ``out`` (M, 6) and
+    their exact derivatives with respect to ``(x, u)`` into ``jac`` (M, 6, 8) (the tangent of the
+    RK4 map: each stage's Jacobian applied to the stage's own tangent, so the result is the
+    derivative of the discrete map, not of the flow). Only the first ``nx`` states are
+    differentiated (4 for a regulator-lag prior, whose spool states are inert: the other rows and
+    columns of ``jac`` are left zero). The prior never models braid hysteresis."""
+    J = np.empty((N_STATE, 8))
+    work = np.empty(16)
+    T = np.zeros((N_STATE, 8))
+    Ts = np.zeros((N_STATE, 8))
+    dk = np.zeros((4, N_STATE, 8))
+    xs = np.empty(N_STATE)
+    s = np.empty(N_STATE)
+    rates = np.empty((4, N_STATE))
+    h6 = h / 6.0
+    for m in range(x.shape[0]):
+        for i in range(N_STATE):
+            s[i] = x[m, i]
+            for k in range(8):
+                T[i, k] = 1.0 if i == k else 0.0
+        u0, u1 = u[m, 0], u[m, 1]
+        for _ in range(n_sub):
+            r = _stage(s, T, u0, u1, P, nx, J, work, dk, 0)
+            for i in range(N_STATE):
+                rates[0, i] = r[i]
+            for st in range(1, 4):
+                ch = 0.5 * h if st < 3 else h          # the same products as _rk4's
+                for i in range(N_STATE):
+                    xs[i] = s[i] + ch * rates[st - 1, i]
+                for i in range(nx):
+                    for k in range(8):
+                        Ts[i, k] = T[i, k] + ch * dk[st - 1, i, k]
+                r = _stage(xs, Ts, u0, u1, P, nx, J, work, dk, st)
+                for i in range(N_STATE):
+                    rates[st, i] = r[i]
+            for i in range(N_STATE):
+                s[i] = s[i] + h6 * (rates[0, i] + 2.0 * (rates[1, i] + rates[2, i]) + rates[3, i])
+            for i in range(nx):
+                for k in range(8):
+                    T[i, k] += h6 * (dk[0, i, k] + 2.0 * (dk[1, i, k] + dk[2, i, k]) + dk[3, i, k])
+        for i in range(N_STATE):
+            out[m, i] = s[i]
+            for k in range(8):
+                jac[m, i, k] = T[i, k] if i < nx else 0.0
 
 
 @law

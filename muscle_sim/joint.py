@@ -50,8 +50,37 @@ def pivot_torque(angle, rate, viscous, coulomb, coulomb_rate_scale, gravity_mome
     return tau
 
 
+@law
+def end_stop_partials(angle, rate, lower_stop, upper_stop, stiffness, damping):
+    """:func:`end_stop_torque` and ``(d/dangle, d/drate)`` of it on the branch the law takes."""
+    tau = end_stop_torque(angle, rate, lower_stop, upper_stop, stiffness, damping)
+    if tau == 0.0:
+        return 0.0, 0.0, 0.0
+    if angle > upper_stop:
+        return tau, -stiffness - damping * rate, -damping * (angle - upper_stop)
+    return tau, -stiffness + damping * rate, damping * (angle - lower_stop)
+
+
+@law
+def pivot_partials(angle, rate, viscous, coulomb, coulomb_rate_scale, gravity_moment, gravity_offset):
+    """:func:`pivot_torque` and ``(d/dangle, d/drate)`` of it."""
+    d_rate = -viscous
+    if coulomb > 0.0:
+        t = math.tanh(rate / coulomb_rate_scale)
+        d_rate = d_rate - coulomb * (1.0 - t * t) / coulomb_rate_scale
+    d_angle = -gravity_moment * math.cos(angle + gravity_offset) if gravity_moment > 0.0 else 0.0
+    return (pivot_torque(angle, rate, viscous, coulomb, coulomb_rate_scale, gravity_moment, gravity_offset), d_angle,
+            d_rate)
+
+
+@law
+def _pivot_angle_slope(angle, rate, viscous, coulomb, coulomb_rate_scale, gravity_moment, gravity_offset):
+    return pivot_partials(angle, rate, viscous, coulomb, coulomb_rate_scale, gravity_moment, gravity_offset)[1]
+
+
 _stop_u = broadcast(end_stop_torque, 6)
 _pivot_u = broadcast(pivot_torque, 7)
+_pivot_slope_u = broadcast(_pivot_angle_slope, 7)
 
 
 def contractions(joint: "JointParams", rest_length: float, angle):
@@ -69,3 +98,9 @@ def passive_torque(joint: "JointParams", angle, rate):
     """:func:`pivot_torque` of ``joint`` over numpy arrays."""
     return _pivot_u(angle, rate, joint.viscous_damping, joint.coulomb_torque, joint.coulomb_rate_scale,
                     joint.gravity_moment, joint.gravity_offset)
+
+
+def passive_torque_slope(joint: "JointParams", angle, rate):
+    """``d tau / d angle`` of :func:`passive_torque` [N m/rad] (:func:`pivot_partials`)."""
+    return _pivot_slope_u(angle, rate, joint.viscous_damping, joint.coulomb_torque, joint.coulomb_rate_scale,
+                          joint.gravity_moment, joint.gravity_offset)

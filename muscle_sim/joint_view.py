@@ -22,10 +22,6 @@ from .simulation import Setup, home_pressures
 from .tables import Column, text_table
 from .tasks import reference
 
-#: Step of the central difference of the pivot torque in :func:`joint_stiffness` [rad].
-_PIVOT_STEP = 1e-5
-
-
 def net_torque(params, angle, pressures):
     """Static torque on the paddle at rest [N m]: muscles ``r_p (F_a - F_b)`` plus the pivot term
     (gravity; friction is zero at rest). Positive turns toward +angle (muscle A's pull)."""
@@ -37,16 +33,14 @@ def joint_stiffness(params, angle, pressures):
     """Stiffness ``-d tau / d q`` of :func:`net_torque` [N m/rad].
 
     Muscles: ``L_a = L_0 - r_p q``, ``L_b = L_0 + r_p q`` give ``r_p^2 (dF_a/dL + dF_b/dL)`` with
-    the analytic :func:`muscle.stiffness`; the pivot's gravity term by a central difference of
-    :func:`joint.passive_torque`, so its law stays written once.
+    the analytic :func:`muscle.stiffness`; the pivot's gravity term from the partials of its law
+    (:func:`joint.passive_torque_slope`).
     """
     angle = np.asarray(angle, dtype=float)
     m, j = params.muscle, params.joint
     eps_a, eps_b = _joint.contractions(j, m.rest_length, angle)
     muscles = j.pulley_radius ** 2 * (_muscle.stiffness(m, pressures[0], eps_a) + _muscle.stiffness(m, pressures[1], eps_b))
-    pivot = -(_joint.passive_torque(j, angle + _PIVOT_STEP, 0.0)
-              - _joint.passive_torque(j, angle - _PIVOT_STEP, 0.0)) / (2 * _PIVOT_STEP)
-    return muscles + pivot
+    return muscles - _joint.passive_torque_slope(j, angle, 0.0)
 
 
 @dataclass(frozen=True)

@@ -89,6 +89,45 @@ def muscle_chamber(pressure, contraction, friction_factor, end_correction, cos_r
     return (force_scale * pull if pull > 0.0 else 0.0), area, vol
 
 
+@law
+def pulling_area_slope(c, neutral_diameter, wall):
+    """``d(pulling area)/dc`` [m^2] of :func:`pulling_area`: ``3 pi D0^2 c / 2`` and, with a wall,
+    ``- pi D0 t (2 + 1/s^2) c / s`` (derived from Chou & Hannaford 1996 by ``ds/dc = -c/s``)."""
+    slope = 1.5 * math.pi * neutral_diameter * neutral_diameter * c
+    if wall > 0.0:
+        s = math.sqrt(1.0 - c * c)
+        slope = slope - math.pi * neutral_diameter * wall * (2.0 + 1.0 / (s * s)) * c / s
+    return slope
+
+
+@law
+def muscle_chamber_partials(pressure, contraction, friction_factor, end_correction, cos_rest, eps_max,
+                            neutral_diameter, wall, rest_length, threshold, friction, force_scale):
+    """:func:`muscle_chamber` and its partial derivatives, for the exact Jacobian of the plant:
+    ``(F, dF/dP, dF/deps, dF/dg, area, d area/deps, volume, d volume/deps)``. On each branch of
+    the law the derivative of that branch (the clipped braid cosine is constant outside
+    ``[0, eps_max]``, a slack or non-pulling muscle has no force slope)."""
+    c = braid_cosine(contraction, end_correction, cos_rest, eps_max)
+    inside = 0.0 <= contraction <= eps_max
+    dc = -end_correction * cos_rest if inside else 0.0
+    s = math.sqrt(1.0 - c * c)
+    inner = neutral_diameter * s - 2.0 * wall
+    vol = bladder_volume(c, neutral_diameter, wall, rest_length, cos_rest, end_correction)
+    # dV/dc = V/c + (pi L_e / 4k) 2 inner D0 ds/dc with L_e = l0 c / cos(alpha0), ds/dc = -c/s
+    dvol = (vol / c - 0.5 * math.pi * rest_length / (cos_rest * end_correction) * inner * neutral_diameter
+            * c * c / s) * dc
+    area = active_area(contraction, end_correction, cos_rest, eps_max, neutral_diameter, wall)
+    darea = pulling_area_slope(c, neutral_diameter, wall) * dc if area > 0.0 else 0.0
+    if area <= 0.0 or pressure <= threshold:
+        return 0.0, 0.0, 0.0, 0.0, area, darea, vol, dvol
+    p_net = pressure - threshold
+    pull = p_net * area - friction * p_net * friction_factor
+    if pull <= 0.0:
+        return 0.0, 0.0, 0.0, 0.0, area, darea, vol, dvol
+    return (force_scale * pull, force_scale * (area - friction * friction_factor), force_scale * p_net * darea,
+            -force_scale * friction * p_net, area, darea, vol, dvol)
+
+
 # ---- numpy face ---------------------------------------------------------------------------------
 def _tension_one(pressure, contraction, contraction_rate, end_correction, cos_rest, eps_max,
                  neutral_diameter, wall, rest_length, threshold, friction, rate_scale, force_scale):
@@ -106,6 +145,7 @@ _tension_u = broadcast(law(_tension_one), 13)
 _volume_u = broadcast(law(_volume_one), 7)
 _area_u = broadcast(active_area, 6)
 _cos_u = broadcast(braid_cosine, 4)
+_slope_u = broadcast(pulling_area_slope, 3)
 
 
 def _geometry(params: "McKibbenParams"):
@@ -190,16 +230,11 @@ def static_force(params: "McKibbenParams", pressure, contraction):
 def stiffness(params: "McKibbenParams", pressure, contraction):
     """Derivative of the static force with respect to muscle length, ``dF/dL`` [N/m].
 
-    Analytic derivative of :func:`pulling_area` through ``dc/dL = k cos(alpha0) / l0``;
+    :func:`pulling_area_slope` through ``dc/dL = k cos(alpha0) / l0``;
     zero where the force is identically zero (slack, past eps_max).
     """
     eps = np.asarray(contraction, dtype=float)
-    c = _cos_u(eps, *_geometry(params))
-    s = np.sqrt(1.0 - c * c)
-    d0, t = params.neutral_diameter, params.wall_thickness
-    darea_dc = 1.5 * math.pi * d0 * d0 * c
-    if t > 0.0:
-        darea_dc = darea_dc - math.pi * d0 * t * (2.0 + 1.0 / (s * s)) * c / s
+    darea_dc = _slope_u(_cos_u(eps, *_geometry(params)), params.neutral_diameter, params.wall_thickness)
     dc_dl = params.end_correction * math.cos(params.rest_braid_angle) / params.rest_length
     inside = (eps >= 0.0) & (eps <= max_contraction(params))
     return np.where(inside, params.force_scale * net_pressure(params, pressure) * darea_dc * dc_dl, 0.0)

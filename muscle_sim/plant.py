@@ -17,10 +17,11 @@ import numpy as np
 from . import joint as _joint
 from . import muscle as _muscle
 from .compiled import law
-from .joint import end_stop_torque, pivot_torque
-from .muscle import muscle_chamber
+from .joint import end_stop_partials, end_stop_torque, pivot_partials, pivot_torque
+from .muscle import muscle_chamber, muscle_chamber_partials
 from .params import PlantParams
-from .pneumatics import chamber_rate, regulator_rate, spool_rate, valve_flow
+from .pneumatics import (chamber_rate, chamber_rate_partials, regulator_rate, regulator_rate_partials, spool_rate,
+                         spool_rate_partials, valve_flow, valve_flow_partials)
 
 N_STATE = 6
 
@@ -109,6 +110,82 @@ def plant_rate(q, qd, pa, pb, sa, sb, ua, ub, slip_a, slip_b, P):
     v_rate = rp * qd
     dpa, dsa = _chamber(pa, sa, ua, vol_a, area_a * v_rate, P)
     dpb, dsb = _chamber(pb, sb, ub, vol_b, -area_b * v_rate, P)
+    return qd, torque / P[K_INERTIA], dpa, dpb, dsa, dsb
+
+
+@law
+def _muscle_partials(pressure, contraction, friction_factor, P):
+    return muscle_chamber_partials(pressure, contraction, friction_factor, P[K_END], P[K_COS0], P[K_EPS_MAX],
+                                   P[K_D0], P[K_WALL], P[K_REST_LENGTH], P[K_THRESHOLD], P[K_FRICTION],
+                                   P[K_FORCE_SCALE])
+
+
+@law
+def _chamber_partials(p, s, u, vol, vol_rate, P, row_p, row_s):
+    """:func:`_chamber` with its partials: fills ``row_p`` with ``(d/dp, d/ds, d/du, d/dV,
+    d/dVdot)`` of dp/dt and ``row_s`` with ``(d/dp, d/ds, d/du)`` of ds/dt; returns the rates."""
+    if P[K_LAG_MODEL] != 0.0:
+        dp, dp_p, dp_u = regulator_rate_partials(p, u, P[K_LAG_TAU], P[K_SUPPLY], P[K_MAX_RATE])
+        row_p[0], row_p[1], row_p[2], row_p[3], row_p[4] = dp_p, 0.0, dp_u, 0.0, 0.0
+        row_s[0], row_s[1], row_s[2] = 0.0, 0.0, 0.0
+        return dp, 0.0
+    flow, flow_s, flow_p = valve_flow_partials(s, p, P[K_SUPPLY], P[K_ATM], P[K_CONDUCTANCE], P[K_CRITICAL],
+                                               P[K_TEMPERATURE], P[K_SUBSONIC])
+    dp, c_p, c_v, c_vd, c_m = chamber_rate_partials(p, vol + P[K_DEAD_VOLUME], vol_rate, flow, P[K_TEMPERATURE],
+                                                    P[K_ATM], P[K_K_IN], P[K_K_OUT], P[K_K_CHAMBER])
+    row_p[0], row_p[1], row_p[2], row_p[3], row_p[4] = c_p + c_m * flow_p, c_m * flow_s, 0.0, c_v, c_vd
+    ds, s_s, s_p, s_u = spool_rate_partials(s, p, u, P[K_VALVE_GAIN], P[K_VALVE_TAU])
+    row_s[0], row_s[1], row_s[2] = s_p, s_s, s_u
+    return dp, ds
+
+
+@law
+def plant_jacobian(q, qd, pa, pb, sa, sb, ua, ub, slip_a, slip_b, P, jac, work):
+    """:func:`plant_rate` and its exact Jacobian: fills ``jac`` (6, 8) with the derivatives of the
+    six rates with respect to ``(q, qd, p_a, p_b, s_a, s_b, u_a, u_b)`` (chain rule over the
+    partials of each law; the Maxwell-slip engagements are held, as over a sub-step). ``work`` is
+    scratch of at least 16 floats. Returns the rates."""
+    rp, l0, eps0 = P[K_PULLEY], P[K_REST_LENGTH], P[K_PRE]
+    shift = rp * q / l0
+    e_q = rp / l0                                   # d eps_a / dq; eps_b has the opposite slope
+    dga = 0.0
+    if P[K_SLIP_MODEL] != 0.0:
+        ga, gb = -slip_a, -slip_b
+    elif P[K_FRICTION] > 0.0:
+        ga = math.tanh(rp * qd / l0 / P[K_FRICTION_RATE])
+        gb = -ga
+        dga = (1.0 - ga * ga) * rp / l0 / P[K_FRICTION_RATE]
+    else:
+        ga = gb = 0.0
+    fa, fa_p, fa_e, fa_g, area_a, area_a_e, vol_a, vol_a_e = _muscle_partials(pa, eps0 + shift, ga, P)
+    fb, fb_p, fb_e, fb_g, area_b, area_b_e, vol_b, vol_b_e = _muscle_partials(pb, eps0 - shift, gb, P)
+    pivot, pivot_q, pivot_qd = pivot_partials(q, qd, P[K_VISCOUS], P[K_COULOMB], P[K_COULOMB_RATE], P[K_GRAVITY],
+                                              P[K_GRAVITY_OFFSET])
+    stop, stop_q, stop_qd = end_stop_partials(q, qd, P[K_LOWER_STOP], P[K_UPPER_STOP], P[K_STOP_K], P[K_STOP_C])
+    torque = rp * (fa - fb) + pivot + stop
+    inv_j = 1.0 / P[K_INERTIA]
+    for i in range(6):
+        for k in range(8):
+            jac[i, k] = 0.0
+    jac[0, 1] = 1.0
+    jac[1, 0] = (rp * e_q * (fa_e + fb_e) + pivot_q + stop_q) * inv_j
+    jac[1, 1] = (rp * (fa_g + fb_g) * dga + pivot_qd + stop_qd) * inv_j      # dgb/dqd = -dga
+    jac[1, 2] = rp * fa_p * inv_j
+    jac[1, 3] = -rp * fb_p * inv_j
+    v_rate = rp * qd
+    row_p, row_s = work[0:5], work[5:8]
+    dpa, dsa = _chamber_partials(pa, sa, ua, vol_a, area_a * v_rate, P, row_p, row_s)
+    # muscle A: V(eps_a), Vdot = area_a(eps_a) r_p qd
+    jac[2, 0] = row_p[3] * vol_a_e * e_q + row_p[4] * area_a_e * e_q * v_rate
+    jac[2, 1] = row_p[4] * area_a * rp
+    jac[2, 2], jac[2, 4], jac[2, 6] = row_p[0], row_p[1], row_p[2]
+    jac[4, 2], jac[4, 4], jac[4, 6] = row_s[0], row_s[1], row_s[2]
+    dpb, dsb = _chamber_partials(pb, sb, ub, vol_b, -area_b * v_rate, P, row_p, row_s)
+    # muscle B: V(eps_b), Vdot = -area_b(eps_b) r_p qd, deps_b/dq = -e_q
+    jac[3, 0] = -row_p[3] * vol_b_e * e_q + row_p[4] * area_b_e * e_q * v_rate
+    jac[3, 1] = -row_p[4] * area_b * rp
+    jac[3, 3], jac[3, 5], jac[3, 7] = row_p[0], row_p[1], row_p[2]
+    jac[5, 3], jac[5, 5], jac[5, 7] = row_s[0], row_s[1], row_s[2]
     return qd, torque / P[K_INERTIA], dpa, dpb, dsa, dsb
 
 

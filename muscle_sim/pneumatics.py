@@ -96,6 +96,94 @@ def regulator_rate(pressure, command, time_constant, supply_pressure, max_rate):
     return min(max(rate, -max_rate), max_rate)
 
 
+# ---- partial derivatives of the laws (the exact Jacobian the learner linearises the prior with) ---
+@law
+def iso6358_flow_partials(conductance, critical_ratio, p_up_abs, p_down_abs, temperature, subsonic_index):
+    """:func:`iso6358_flow` ``q`` and ``(dq/dC, dq/dp_up, dq/dp_down)`` on the branch the law takes
+    (derived from ISO 6358-1 eq. (1)-(2): ``q = C rho0 p1 sqrt(T0/T) f(p2/p1)``, so
+    ``dq/dp1 = C rho0 sqrt(T0/T) (f - r f')`` and ``dq/dp2 = C rho0 sqrt(T0/T) f'``)."""
+    if p_up_abs >= p_down_abs:
+        hi, lo, sign = p_up_abs, p_down_abs, 1.0
+    else:
+        hi, lo, sign = p_down_abs, p_up_abs, -1.0
+    ratio = lo / hi
+    b = critical_ratio
+    if ratio <= b:
+        shape, slope = 1.0, 0.0
+    elif ratio <= LINEAR_FROM:
+        x = (ratio - b) / (1.0 - b)
+        w = 1.0 - x * x
+        shape = math.sqrt(w) if subsonic_index == 0.5 else w ** subsonic_index
+        slope = -2.0 * subsonic_index * x * shape / w / (1.0 - b)
+    else:
+        x = (LINEAR_FROM - b) / (1.0 - b)
+        ellipse = math.sqrt(1.0 - x * x) if subsonic_index == 0.5 else (1.0 - x * x) ** subsonic_index
+        shape = ellipse * (1.0 - ratio) / (1.0 - LINEAR_FROM)
+        slope = -ellipse / (1.0 - LINEAR_FROM)
+    unit = sign * RHO0 * math.sqrt(T0 / temperature)
+    d_hi = unit * conductance * (shape - ratio * slope)
+    d_lo = unit * conductance * slope
+    flow = iso6358_flow(conductance, critical_ratio, p_up_abs, p_down_abs, temperature, subsonic_index)
+    if sign > 0.0:
+        return flow, unit * hi * shape, d_hi, d_lo
+    return flow, unit * hi * shape, d_lo, d_hi
+
+
+@law
+def valve_flow_partials(spool, pressure, supply_pressure, atmosphere_abs, conductance, critical_ratio,
+                        temperature, subsonic_index):
+    """:func:`valve_flow` and ``(dq/dspool, dq/dP)``. At a closed spool (the kink between the
+    supply and exhaust ports) the spool slope is the mean of the two one-sided slopes, as a
+    central difference across it gives."""
+    flow = valve_flow(spool, pressure, supply_pressure, atmosphere_abs, conductance, critical_ratio, temperature,
+                      subsonic_index)
+    if spool != 0.0:
+        if spool > 0.0:
+            _, q_c, _, q_down = iso6358_flow_partials(conductance * spool, critical_ratio,
+                                                      supply_pressure + atmosphere_abs, pressure + atmosphere_abs,
+                                                      temperature, subsonic_index)
+            return flow, q_c * conductance, q_down
+        _, q_c, q_up, _ = iso6358_flow_partials(-conductance * spool, critical_ratio, pressure + atmosphere_abs,
+                                                atmosphere_abs, temperature, subsonic_index)
+        return flow, q_c * conductance, -q_up
+    _, fill, _, _ = iso6358_flow_partials(conductance, critical_ratio, supply_pressure + atmosphere_abs,
+                                          pressure + atmosphere_abs, temperature, subsonic_index)
+    _, vent, _, _ = iso6358_flow_partials(conductance, critical_ratio, pressure + atmosphere_abs, atmosphere_abs,
+                                          temperature, subsonic_index)
+    return flow, 0.5 * (fill + vent) * conductance, 0.0
+
+
+@law
+def chamber_rate_partials(pressure, volume, volume_rate, mass_flow_in, temperature, atmosphere_abs, k_in, k_out,
+                          k_chamber):
+    """:func:`chamber_rate` and ``(d/dP, d/dV, d/dVdot, d/dmdot)`` of it."""
+    k = k_in if mass_flow_in >= 0.0 else k_out
+    rate = chamber_rate(pressure, volume, volume_rate, mass_flow_in, temperature, atmosphere_abs, k_in, k_out,
+                        k_chamber)
+    return (rate, -k_chamber * volume_rate / volume, -rate / volume, -k_chamber * (pressure + atmosphere_abs) / volume,
+            R_AIR * temperature * k / volume)
+
+
+@law
+def spool_rate_partials(spool, pressure, command, valve_gain, time_constant):
+    """:func:`spool_rate` and ``(d/dspool, d/dP, d/dcommand)``; the demand has no slope where it
+    is limited (at the limit itself, the slope from inside)."""
+    target = valve_gain * (command - pressure) / SPOOL_PRESSURE_UNIT
+    slope = valve_gain / SPOOL_PRESSURE_UNIT / time_constant if -1.0 <= target <= 1.0 else 0.0
+    return spool_rate(spool, pressure, command, valve_gain, time_constant), -1.0 / time_constant, -slope, slope
+
+
+@law
+def regulator_rate_partials(pressure, command, time_constant, supply_pressure, max_rate):
+    """:func:`regulator_rate` and ``(d/dP, d/dcommand)``; no slope where the rate or the command is
+    limited (at a limit itself, the slope from inside: a command at the supply pressure, where the
+    learner's and the planner's pressure box may end, still moves the pressure when lowered)."""
+    rate = regulator_rate(pressure, command, time_constant, supply_pressure, max_rate)
+    if not -max_rate < rate < max_rate:
+        return rate, 0.0, 0.0
+    return rate, -1.0 / time_constant, (1.0 / time_constant if 0.0 <= command <= supply_pressure else 0.0)
+
+
 _flow_u = broadcast(iso6358_flow, 6)
 _chamber_u = broadcast(chamber_rate, 9)
 _regulator_u = broadcast(regulator_rate, 5)
