@@ -20,8 +20,8 @@ from .compiled import law
 from .joint import end_stop_partials, end_stop_torque, pivot_partials, pivot_torque
 from .muscle import muscle_chamber, muscle_chamber_partials
 from .params import PlantParams
-from .pneumatics import (chamber_rate, chamber_rate_partials, regulator_rate, regulator_rate_partials, spool_rate,
-                         spool_rate_partials, valve_flow, valve_flow_partials)
+from .pneumatics import (R_AIR, chamber_rate, chamber_rate_partials, closed_spool_slopes, regulator_rate,
+                         regulator_rate_partials, spool_rate, spool_rate_partials, valve_flow, valve_flow_partials)
 
 N_STATE = 6
 
@@ -134,6 +134,14 @@ def _chamber_partials(p, s, u, vol, vol_rate, P, row_p, row_s):
     dp, c_p, c_v, c_vd, c_m = chamber_rate_partials(p, vol + P[K_DEAD_VOLUME], vol_rate, flow, P[K_TEMPERATURE],
                                                     P[K_ATM], P[K_K_IN], P[K_K_OUT], P[K_K_CHAMBER])
     row_p[0], row_p[1], row_p[2], row_p[3], row_p[4] = c_p + c_m * flow_p, c_m * flow_s, 0.0, c_v, c_vd
+    if s == 0.0:
+        # a closed spool: filling (charging coefficient k_in) on one side, venting (k_out) on the
+        # other; the slope is the mean of the two one-sided slopes of dp/dt, as a central
+        # difference across the closed position gives
+        fill, vent = closed_spool_slopes(p, P[K_SUPPLY], P[K_ATM], P[K_CONDUCTANCE], P[K_CRITICAL],
+                                         P[K_TEMPERATURE], P[K_SUBSONIC])
+        heat = R_AIR * P[K_TEMPERATURE] / (vol + P[K_DEAD_VOLUME])
+        row_p[1] = 0.5 * heat * (P[K_K_IN] * fill + P[K_K_OUT] * vent)
     ds, s_s, s_p, s_u = spool_rate_partials(s, p, u, P[K_VALVE_GAIN], P[K_VALVE_TAU])
     row_s[0], row_s[1], row_s[2] = s_p, s_s, s_u
     return dp, ds

@@ -146,11 +146,21 @@ def valve_flow_partials(spool, pressure, supply_pressure, atmosphere_abs, conduc
         _, q_c, q_up, _ = iso6358_flow_partials(-conductance * spool, critical_ratio, pressure + atmosphere_abs,
                                                 atmosphere_abs, temperature, subsonic_index)
         return flow, q_c * conductance, -q_up
+    fill, vent = closed_spool_slopes(pressure, supply_pressure, atmosphere_abs, conductance, critical_ratio,
+                                     temperature, subsonic_index)
+    return flow, 0.5 * (fill + vent), 0.0
+
+
+@law
+def closed_spool_slopes(pressure, supply_pressure, atmosphere_abs, conductance, critical_ratio, temperature,
+                        subsonic_index):
+    """``dq/dspool`` [kg/s] of :func:`valve_flow` just past a closed spool toward the supply port
+    and toward the exhaust port (the flow is linear in the opening on either side)."""
     _, fill, _, _ = iso6358_flow_partials(conductance, critical_ratio, supply_pressure + atmosphere_abs,
                                           pressure + atmosphere_abs, temperature, subsonic_index)
     _, vent, _, _ = iso6358_flow_partials(conductance, critical_ratio, pressure + atmosphere_abs, atmosphere_abs,
                                           temperature, subsonic_index)
-    return flow, 0.5 * (fill + vent) * conductance, 0.0
+    return fill * conductance, vent * conductance
 
 
 @law
