@@ -4,7 +4,9 @@ delay, divergence checks, and a scipy ``solve_ivp`` reference path for tests.
 The control step is one compiled call (:func:`advance_batch`) for one state or a batch of
 4096: RK4 on :func:`muscle_sim.plant.plant_rate` for every sub-step, the delayed command
 looked up per sub-step, each member with its own parameter row if given. Nothing clamps the
-state afterwards: the right-hand side itself keeps pressures physical.
+state afterwards: the right-hand side itself keeps pressures physical. :func:`step_with_jacobian`
+is the same RK4 map with its exact derivatives (the tangent through every stage), for
+linearising the prior.
 """
 from __future__ import annotations
 

@@ -270,9 +270,10 @@ def _rig(draw):
 @settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(_rig())
 def test_plant_jacobian_over_the_ranges_of_real_rigs(rig):
-    # Reference: scipy.differentiate.jacobian of rhs, as above, on random plants and states; a
-    # point whose numerical derivative does not converge (a branch of a law within the difference
-    # steps, e.g. the choked ratio or a muscle going slack) is skipped, the others must agree
+    # Reference: scipy.differentiate.jacobian of rhs, as above, on random plants and states. An
+    # entry whose numerical derivative changes between initial steps of 1e-4 and 1e-6 (a branch of a
+    # law within the steps, e.g. the choked ratio) is not compared, and a point with more than a
+    # fifth of such entries is skipped; every other entry must agree to 1e-5 of its row
     from hypothesis import assume
 
     params, x, u = rig
@@ -290,9 +291,7 @@ def test_plant_jacobian_over_the_ranges_of_real_rigs(rig):
     size = np.max(np.abs(fine), axis=1, keepdims=True) + 1e-300
     smooth = np.abs(coarse - fine) <= 1e-6 * size        # no branch of a law within the steps
     assume(bool(np.mean(smooth) > 0.8))
-    numeric = fine / scale
     for i in range(N_STATE):
         row = smooth[i]
         np.testing.assert_allclose(jac[i][row] * scale[row], fine[i][row], rtol=1e-5, atol=1e-5 * float(size[i, 0]),
                                    err_msg=f"rate {i} of {params} at {x}, {u}")
-    assert numeric.shape == (N_STATE, 8)
