@@ -107,24 +107,20 @@ def muscle_chamber_partials(pressure, contraction, friction_factor, end_correcti
     ``(F, dF/dP, dF/deps, dF/dg, area, d area/deps, volume, d volume/deps)``. On each branch of
     the law the derivative of that branch (the clipped braid cosine is constant outside
     ``[0, eps_max]``, a slack or non-pulling muscle has no force slope)."""
+    force, area, vol = muscle_chamber(pressure, contraction, friction_factor, end_correction, cos_rest, eps_max,
+                                      neutral_diameter, wall, rest_length, threshold, friction, force_scale)
     c = braid_cosine(contraction, end_correction, cos_rest, eps_max)
-    inside = 0.0 <= contraction <= eps_max
-    dc = -end_correction * cos_rest if inside else 0.0
+    dc = -end_correction * cos_rest if 0.0 <= contraction <= eps_max else 0.0
     s = math.sqrt(1.0 - c * c)
     inner = neutral_diameter * s - 2.0 * wall
-    vol = bladder_volume(c, neutral_diameter, wall, rest_length, cos_rest, end_correction)
     # dV/dc = V/c + (pi L_e / 4k) 2 inner D0 ds/dc with L_e = l0 c / cos(alpha0), ds/dc = -c/s
     dvol = (vol / c - 0.5 * math.pi * rest_length / (cos_rest * end_correction) * inner * neutral_diameter
             * c * c / s) * dc
-    area = active_area(contraction, end_correction, cos_rest, eps_max, neutral_diameter, wall)
     darea = pulling_area_slope(c, neutral_diameter, wall) * dc if area > 0.0 else 0.0
-    if area <= 0.0 or pressure <= threshold:
+    if force <= 0.0:                  # slack, below the threshold, or friction outweighs the pull
         return 0.0, 0.0, 0.0, 0.0, area, darea, vol, dvol
-    p_net = pressure - threshold
-    pull = p_net * area - friction * p_net * friction_factor
-    if pull <= 0.0:
-        return 0.0, 0.0, 0.0, 0.0, area, darea, vol, dvol
-    return (force_scale * pull, force_scale * (area - friction * friction_factor), force_scale * p_net * darea,
+    p_net = pressure - threshold      # F = s_F (P_n A - mu pi r0^2 P_n g) on this branch
+    return (force, force_scale * (area - friction * friction_factor), force_scale * p_net * darea,
             -force_scale * friction * p_net, area, darea, vol, dvol)
 
 

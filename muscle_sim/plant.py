@@ -133,15 +133,17 @@ def _chamber_partials(p, s, u, vol, vol_rate, P, row_p, row_s):
                                                P[K_TEMPERATURE], P[K_SUBSONIC])
     dp, c_p, c_v, c_vd, c_m = chamber_rate_partials(p, vol + P[K_DEAD_VOLUME], vol_rate, flow, P[K_TEMPERATURE],
                                                     P[K_ATM], P[K_K_IN], P[K_K_OUT], P[K_K_CHAMBER])
-    row_p[0], row_p[1], row_p[2], row_p[3], row_p[4] = c_p + c_m * flow_p, c_m * flow_s, 0.0, c_v, c_vd
-    if s == 0.0:
+    if s != 0.0:
+        spool_slope = c_m * flow_s
+    else:
         # a closed spool: filling (charging coefficient k_in) on one side, venting (k_out) on the
-        # other; the slope is the mean of the two one-sided slopes of dp/dt, as a central
+        # other; the slope of dp/dt is the mean of its two one-sided slopes, as a central
         # difference across the closed position gives
         fill, vent = closed_spool_slopes(p, P[K_SUPPLY], P[K_ATM], P[K_CONDUCTANCE], P[K_CRITICAL],
                                          P[K_TEMPERATURE], P[K_SUBSONIC])
         heat = R_AIR * P[K_TEMPERATURE] / (vol + P[K_DEAD_VOLUME])
-        row_p[1] = 0.5 * heat * (P[K_K_IN] * fill + P[K_K_OUT] * vent)
+        spool_slope = 0.5 * heat * (P[K_K_IN] * fill + P[K_K_OUT] * vent)
+    row_p[0], row_p[1], row_p[2], row_p[3], row_p[4] = c_p + c_m * flow_p, spool_slope, 0.0, c_v, c_vd
     ds, s_s, s_p, s_u = spool_rate_partials(s, p, u, P[K_VALVE_GAIN], P[K_VALVE_TAU])
     row_s[0], row_s[1], row_s[2] = s_p, s_s, s_u
     return dp, ds
@@ -152,7 +154,7 @@ def plant_jacobian(q, qd, pa, pb, sa, sb, ua, ub, slip_a, slip_b, P, jac, work):
     """:func:`plant_rate` and its exact Jacobian: fills ``jac`` (6, 8) with the derivatives of the
     six rates with respect to ``(q, qd, p_a, p_b, s_a, s_b, u_a, u_b)`` (chain rule over the
     partials of each law; the Maxwell-slip engagements are held, as over a sub-step). ``work`` is
-    scratch of at least 16 floats. Returns the rates."""
+    scratch of at least 8 floats. Returns the rates."""
     rp, l0, eps0 = P[K_PULLEY], P[K_REST_LENGTH], P[K_PRE]
     shift = rp * q / l0
     e_q = rp / l0                                   # d eps_a / dq; eps_b has the opposite slope
