@@ -23,6 +23,7 @@ from dataclasses import asdict, dataclass, field
 
 import numpy as np
 from scipy.linalg import cho_factor, cho_solve, eigh
+from scipy.linalg.lapack import dpocon
 
 from muscle_sim.threads import single_blas_thread
 
@@ -69,8 +70,20 @@ GROW_ABOVE = 0.5
 #: is kept.
 MIN_LEARNING_GAIN = 0.25
 
-#: Penalty weight of the angle constraints in the step QP (rows of unit norm, steps in 10 kPa).
+#: Penalty weight of the angle constraints in the step QP (rows of unit norm, steps in STEP_UNIT).
 PENALTY = 1e6
+#: The step QP is solved in units of 10 kPa [Pa], its matrix scaled to unit mean diagonal.
+STEP_UNIT = 1e4
+
+#: The active-set iterations of :func:`box_qp` solve each subproblem on the Cholesky factor of the
+#: whole matrix, bordered by the fixed bounds (a Schur complement of their rows of ``A^-1``),
+#: while at most this share of the variables is fixed; beyond it they factor the free block.
+BORDERED_SHARE = 1.0 / 3.0
+#: ... and only for a matrix whose reciprocal condition number (LAPACK's estimate) is at least
+#: this: the bordered solve's error grows with the condition of the whole matrix, and the
+#: active-set test reads the signs of small multipliers (the penalised pieces, with their
+#: 1e6 weights, are solved on the free block).
+BORDERED_RCOND = 1e-6
 
 #: Update outcomes; ``success`` (the step is sound) is True for 0 and 1 only.
 STATUS_MESSAGES = {
@@ -168,35 +181,71 @@ def norm_optimal_step(H, grad, regularisation: float):
     return cho_solve(cho_factor(H + reg * np.eye(H.shape[0]), check_finite=False), grad, check_finite=False)
 
 
-def box_qp(A, b, low, high, start=None, max_iterations: int | None = None):
+def box_qp(A, b, low, high, start=None, max_iterations: int | None = None, factor=None,
+           condition: float | None = None):
     """``argmin 1/2 z^T A z - b^T z`` subject to ``low <= z <= high`` for a symmetric positive
     definite ``A``: the primal active-set method for convex QP (Nocedal & Wright 2006, Numerical
     Optimization, 2nd ed., Algorithm 16.3) on bound constraints, started from ``start`` (default:
     the unconstrained minimiser) clipped to the box, with the bounds it lies on as the working
-    set. Each iteration fixes
-    one more bound (the first met on the way to the subproblem's minimiser) or frees the bound with
-    the most negative multiplier. Returns ``(z, converged)``; at convergence the free components
-    have zero gradient and the gradient points out of the box at every bound (KKT up to rounding).
+    set. Each iteration fixes one more bound (the first met on the way to the subproblem's
+    minimiser) or frees the bound with the most negative multiplier. Returns ``(z, converged)``;
+    at convergence the free components have zero gradient and the gradient points out of the box
+    at every bound (KKT up to rounding).
+
+    Each subproblem fixes the working set ``F`` at its bounds ``v``: its minimiser is
+    ``z0 + Y mu`` with ``z0 = A^-1 b``, ``Y`` the columns ``F`` of ``A^-1`` and
+    ``Y_F mu = v - z0_F`` (the KKT system of the equality-constrained QP solved by the
+    Schur-complement method, Nocedal & Wright section 16.2). One factorisation of
+    ``A`` (``factor``, from :func:`scipy.linalg.cho_factor`, when the caller has it) then serves
+    every iteration; a column of ``A^-1`` is solved once, when its bound first enters the set.
+    With more than :data:`BORDERED_SHARE` of the variables fixed, or a matrix conditioned worse
+    than :data:`BORDERED_RCOND`, the free block is factored instead (cheaper there, and as
+    accurate as the free block's own condition allows). ``condition``: an upper bound of ``A``'s
+    condition number when the caller knows one; else LAPACK's estimate (``dpocon``) is taken.
     """
     n = b.size
     limit = 10 * n + 50 if max_iterations is None else max_iterations
+    factor = cho_factor(A, check_finite=False) if factor is None else factor
+    z0 = cho_solve(factor, b, check_finite=False)
     if start is None:
-        z = cho_solve(cho_factor(A, check_finite=False), b, check_finite=False)
-        if np.all((z > low) & (z < high)):
-            return z, True
+        if np.all((z0 > low) & (z0 < high)):
+            return z0, True
+        z = z0
     else:
         z = np.asarray(start, dtype=float)
     z = np.clip(z, low, high)
     at_low, at_high = z <= low, z >= high
     tol = 1e-12 * max(1.0, float(np.max(np.abs(b))))
+    inverse_columns = {}                  # bound index -> that column of A^-1
+    if condition is None:
+        rcond, info = dpocon(factor[0], float(np.max(np.sum(np.abs(A), axis=0))), uplo="L" if factor[1] else "U")
+        well_conditioned = info == 0 and rcond >= BORDERED_RCOND
+    else:
+        well_conditioned = condition * BORDERED_RCOND <= 1.0
+    bordered_limit = int(BORDERED_SHARE * n) if well_conditioned else 0
     for _ in range(limit):
         fixed = at_low | at_high
         free = ~fixed
-        target = z.copy()
-        if free.any():
-            rhs = b[free] - A[np.ix_(free, fixed)] @ z[fixed]
-            target[free] = cho_solve(cho_factor(A[np.ix_(free, free)], check_finite=False), rhs,
-                                     check_finite=False)
+        idx = np.flatnonzero(fixed)
+        if idx.size == 0:
+            target = z0.copy()
+        elif idx.size <= bordered_limit:
+            new = [i for i in idx if i not in inverse_columns]
+            if new:
+                unit = np.zeros((n, len(new)))
+                unit[new, np.arange(len(new))] = 1.0
+                for i, column in zip(new, cho_solve(factor, unit, check_finite=False).T):
+                    inverse_columns[i] = column
+            Y = np.column_stack([inverse_columns[i] for i in idx])
+            shift = z[idx] - z0[idx]
+            target = z0 + Y @ (shift / Y[idx[0], 0] if idx.size == 1 else np.linalg.solve(Y[idx], shift))
+            target[idx] = z[idx]
+        else:
+            target = z.copy()
+            if free.any():
+                rhs = b[free] - A[np.ix_(free, fixed)] @ z[fixed]
+                target[free] = cho_solve(cho_factor(A[np.ix_(free, free)], check_finite=False), rhs,
+                                         check_finite=False)
         p = target - z
         with np.errstate(divide="ignore", invalid="ignore"):
             reach = np.where(free & (p < 0), (low - z) / p, np.where(free & (p > 0), (high - z) / p, np.inf))
@@ -218,7 +267,7 @@ def box_qp(A, b, low, high, start=None, max_iterations: int | None = None):
     return z, False
 
 
-def penalised_box_qp(A, b, low, high, M, h, rho: float, max_iterations: int = 100):
+def penalised_box_qp(A, b, low, high, M, h, rho: float, max_iterations: int = 100, factor=None):
     """``argmin 1/2 z^T A z - b^T z + rho/2 |min(M z - h, 0)|^2`` subject to ``low <= z <= high``
     (``A`` symmetric positive definite): the quadratic penalty form of the constraints
     ``M z >= h``, which also gives the least violation when the box does not let every constraint
@@ -228,13 +277,14 @@ def penalised_box_qp(A, b, low, high, M, h, rho: float, max_iterations: int = 10
     (Armijo) on the objective along the way there: a semismooth Newton method (Qi & Sun 1993,
     Math. Program. 58, "A nonsmooth version of Newton's method"). It has converged when the
     minimiser of a piece lies on that piece (then it meets the objective's KKT conditions).
-    Returns ``(z, converged)``."""
+    ``factor``: the Cholesky factor of ``A`` when the caller has it. Returns ``(z, converged)``."""
 
     def objective(z):
         short = np.minimum(M @ z - h, 0.0)
         return 0.5 * z @ A @ z - b @ z + 0.5 * rho * short @ short, A @ z - b + rho * (M.T @ short)
 
-    z = np.clip(cho_solve(cho_factor(A, check_finite=False), b, check_finite=False), low, high)
+    factor = cho_factor(A, check_finite=False) if factor is None else factor
+    z = np.clip(cho_solve(factor, b, check_finite=False), low, high)
     for _ in range(max_iterations):
         rows = M @ z - h < 0.0
         piece_A = A + rho * M[rows].T @ M[rows]
@@ -309,6 +359,7 @@ class GradientLearner:
         self.angle_high = j.upper_stop - settings.angle_margin
         self._limit_stride = max(1, int(round(0.004 / self.task.dt)))   # a sample every 4 ms
         self._priors = {}
+        self._work = {}              # arrays each update overwrites (see _buffer)
         # the cost of an error of guard_floor at every sample: below it no trial counts as diverged
         self._guard_floor = 0.5 * float(np.sum(self.objective.w_angle)) * settings.guard_floor ** 2
         t = np.arange(self.phi.shape[0]) * self.task.dt
@@ -328,10 +379,22 @@ class GradientLearner:
         return LearnerState(theta=theta.tolist())
 
     # -- linear algebra on the basis ---------------------------------------------------------
+    def _buffer(self, name: str, shape: tuple, order: str = "C") -> np.ndarray:
+        """A work array of the update, kept from one update to the next: its matrices are as
+        large as the trial, and fresh memory for each costs the operating system's page faults
+        every trial (a third of a short trial's update on a virtual machine). Nothing an update
+        returns refers to one, so a learner runs one update at a time."""
+        array = self._work.get(name)
+        if array is None or array.shape != shape or not array.flags[f"{order}_CONTIGUOUS"]:
+            array = self._work[name] = np.empty(shape, order=order)
+        return array
+
     def _columns(self, lin):
         """``G`` on the basis by forward passes: angle rows (n+1, P) and strike-rate row (P,)
         over the ``n`` steps the linearisation covers."""
-        return lin.forward_on_basis(self.phi)
+        p = 2 * self.phi.shape[1]
+        return lin.forward_on_basis(self.phi, out=(self._buffer("g_angle", (lin.n_steps + 1, p)),
+                                                   self._buffer("g_rate", (p,))))
 
     def _violated(self, g_angle, y):
         """Rows ``M v >= h`` of the Muehlebach–Jordan velocity-level constraints for the angle
@@ -352,17 +415,42 @@ class GradientLearner:
         return (np.vstack([g_angle[lo], -g_angle[hi]]),
                 np.concatenate([y[lo] - self.angle_low, self.angle_high - y[hi]]))
 
-    def _solve_step(self, A, b, theta, limits):
-        """``argmin 1/2 d^T A d - b^T d`` with ``theta + d`` in the pressure box and the violated
-        angle constraints ``M d >= h``. With the box alone this QP is solved exactly by
-        :func:`box_qp`; with angle constraints its quadratic penalty form (weight :data:`PENALTY`
-        on rows scaled to unit norm) by :func:`penalised_box_qp`. Returns the step, how many
-        angle constraints bind, and whether the step is sound: the solver converged and every
-        constraint holds to :data:`ANGLE_CONDITION_TOLERANCE`."""
-        sigma = 1e4                                   # optimise in units of 10 kPa
-        As = A * sigma * sigma
-        norm = max(float(np.trace(As)) / As.shape[0], 1e-300)
-        As, bs = As / norm, b * sigma / norm
+    def _step_problem(self, H, grad):
+        """The step QP at unit step scale, ``argmin 1/2 d^T A d - c^T d``, as ``(quadratic, c)``:
+        norm-optimal ``A = G^T W G + S``, ``c = G^T W e``; gradient ``A = I``, ``c`` the gradient
+        step. A step scale ``s`` is the same QP with ``s c`` (for norm-optimal the change penalty
+        ``S / s``), so one :meth:`_factored` quadratic serves every scale tried."""
+        if self.settings.method == "gradient":
+            return self._factored(np.eye(H.shape[0]), condition=1.0), gradient_step(H, grad)
+        reg = self.settings.regularisation * float(np.trace(H)) / H.shape[0]
+        A = self._buffer("step_matrix", H.shape)
+        np.copyto(A, H)
+        A.flat[:: A.shape[0] + 1] += reg
+        # H is positive semidefinite with largest eigenvalue at most trace(H) = n reg / r, so the
+        # condition of H + reg I is at most 1 + n / r (r the regularisation setting)
+        bound = 1.0 + H.shape[0] / self.settings.regularisation if self.settings.regularisation > 0 else None
+        return self._factored(A, overwrite=True, condition=bound), grad
+
+    def _factored(self, A, overwrite: bool = False, condition: float | None = None):
+        """``(A_n, factor, unit, condition)``: ``A`` in units of 10 kPa (:data:`STEP_UNIT`) scaled to
+        unit mean diagonal (``A_n = A / unit``; ``overwrite``: in place), the Cholesky factor of
+        ``A_n``, and the bound of its condition number the caller knows (None: unknown)."""
+        unit = max(float(np.trace(A)) / A.shape[0], 1e-300)
+        A_n = np.divide(A, unit, out=A if overwrite else None)
+        upper = self._buffer("step_factor", A.shape, order="F")     # LAPACK's order: factored in place
+        np.copyto(upper, A_n)
+        return A_n, cho_factor(upper, overwrite_a=True, check_finite=False), unit, condition
+
+    def _solve_step(self, quadratic, c, theta, limits):
+        """``argmin 1/2 d^T A d - c^T d`` (``A`` as :meth:`_factored`) with ``theta + d`` in the
+        pressure box and the violated angle constraints ``M d >= h``. With the box alone this QP
+        is solved exactly by :func:`box_qp`; with angle constraints its quadratic penalty form
+        (weight :data:`PENALTY` on rows scaled to unit norm) by :func:`penalised_box_qp`. Returns
+        the step, how many angle constraints bind, and whether the step is sound: the solver
+        converged and every constraint holds to :data:`ANGLE_CONDITION_TOLERANCE`."""
+        sigma = STEP_UNIT
+        As, factor, unit, condition = quadratic
+        bs = c / (sigma * unit)
         lo, hi = (self.p_low - theta) / sigma, (self.p_high - theta) / sigma
         if limits is not None:
             M, h = limits
@@ -372,9 +460,9 @@ class GradientLearner:
             M, h, rows = M[keep], h[keep], rows[keep]
             limits = (M * sigma / rows[:, None], h / rows) if keep.any() else None   # unit rows: O(1)
         if limits is None:
-            z, converged = box_qp(As, bs, lo, hi)
+            z, converged = box_qp(As, bs, lo, hi, factor=factor, condition=condition)
             return z * sigma, 0, converged
-        z, converged = penalised_box_qp(As, bs, lo, hi, limits[0], limits[1], PENALTY)
+        z, converged = penalised_box_qp(As, bs, lo, hi, limits[0], limits[1], PENALTY, factor=factor)
         slack = limits[0] @ z - limits[1]              # per unit row; times the row norm: [rad]
         met = bool(np.all(slack * rows >= -ANGLE_CONDITION_TOLERANCE))
         return z * sigma, int(np.count_nonzero(slack < 1e-4)), converged and met
@@ -453,9 +541,10 @@ class GradientLearner:
         """Rows ``M d >= h`` (position level: the predicted angle stays inside) for the samples that
         the last trial kept clear of the limits by more than :data:`LIMIT_BAND` but that the step
         ``applied`` is predicted to carry past one; ``None`` when none is."""
-        idx = np.arange(min(len(y), g_angle.shape[0]))[:: self._limit_stride]
+        rows = slice(0, min(len(y), g_angle.shape[0]), self._limit_stride)      # a view: no copy of G
+        idx = np.arange(rows.stop)[rows]
         y0 = y[idx]
-        new = y0 + g_angle[idx] @ applied
+        new = y0 + g_angle[rows] @ applied
         lo = idx[(y0 >= self.angle_low + LIMIT_BAND) & (new < self.angle_low)]
         hi = idx[(y0 <= self.angle_high - LIMIT_BAND) & (new > self.angle_high)]
         if lo.size + hi.size == 0:
@@ -463,8 +552,9 @@ class GradientLearner:
         M, g = self._limit_rows(g_angle, y, lo, hi)
         return M, -g
 
-    def _step_for(self, H, grad, theta, scale, limits0, g_angle, y):
-        """Step at ``scale`` (norm-optimal: the change penalty grows as the scale shrinks).
+    def _step_for(self, problem, theta, scale, limits0, g_angle, y):
+        """Step at ``scale`` of the step QP ``problem`` (:meth:`_step_problem`; norm-optimal: the
+        change penalty grows as the scale shrinks).
 
         The angle limits: the velocity-level rows of the samples the trial brought near or past a
         limit (the step is ``d = T v``, so a broken limit is restored by ``alpha T g_i``), plus,
@@ -472,14 +562,10 @@ class GradientLearner:
         position-level row for each sample the step would carry past a limit: the first-order
         condition guards only the samples it is written for, and a step may lift another part of
         the swing past the limit."""
-        if self.settings.method == "gradient":
-            A, b = np.eye(H.shape[0]), scale * gradient_step(H, grad)
-        else:
-            reg = self.settings.regularisation * float(np.trace(H)) / H.shape[0]
-            A, b = (H + reg * np.eye(H.shape[0])) / scale, grad
+        quadratic, c = problem
         rows = None if limits0 is None else (limits0[0], scale * limits0[1])   # d = T v: alpha T g_i
         for _ in range(SCREEN_ROUNDS):
-            step, active, solved = self._solve_step(A, b, theta, rows)
+            step, active, solved = self._solve_step(quadratic, scale * c, theta, rows)
             if not solved:      # the trial's own limits cannot be met: no more rows to weigh against
                 break
             extra = self._screened(g_angle, y, np.clip(theta + step, self.p_low, self.p_high) - theta)
@@ -559,8 +645,11 @@ class GradientLearner:
         # G^T W e on the basis (rows of phi past an aborted trial get no gradient)
         grad = (self.phi[:lin.n_steps].T @ lin.adjoint(W * e, w_rate * e_rate)).T.reshape(-1)
         g_angle, g_rate = self._columns(lin)
-        g_weighted = g_angle * np.sqrt(W)[:, None]
-        H = g_weighted.T @ g_weighted + w_rate * np.outer(g_rate, g_rate)     # G^T W G (symmetric product)
+        # G^T W G as one symmetric product: the angle rows weighted by sqrt(W), the rate row last
+        g_weighted = self._buffer("g_weighted", (g_angle.shape[0] + 1, g_angle.shape[1]))
+        np.multiply(g_angle, np.sqrt(W)[:, None], out=g_weighted[:-1])
+        np.multiply(g_rate, math.sqrt(w_rate), out=g_weighted[-1])
+        H = np.matmul(g_weighted.T, g_weighted, out=self._buffer("H", (g_angle.shape[1],) * 2))
         limits = self._violated(g_angle, rollout.measured[:, 0])
         finite = bool(np.all(np.isfinite(H)) and np.all(np.isfinite(grad)))
 
@@ -579,8 +668,9 @@ class GradientLearner:
 
         step, active, solved, predicted, tries = 0.0, 0, False, cost, 0
         new_theta = theta
+        problem = self._step_problem(H, grad) if finite else None
         while finite and tries < 5:
-            step, active, solved = self._step_for(H, grad, theta, scale * learning_gain, limits, g_angle,
+            step, active, solved = self._step_for(problem, theta, scale * learning_gain, limits, g_angle,
                                                   rollout.measured[:, 0])
             new_theta = np.clip(theta + step, self.p_low, self.p_high)
             predicted = predict(new_theta - theta)

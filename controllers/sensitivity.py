@@ -68,15 +68,16 @@ def _forward(A, B, delay, strike_index, du):
 
 
 @_compile
-def _forward_on_basis(A, B, delay, strike_index, phi):
+def _forward_on_basis(A, B, delay, strike_index, phi, angles, rate):
     """:func:`_forward` for the basis columns: muscle A's command ``phi[:, j]`` (column j) and
-    muscle B's (column K + j) for every knot j of ``phi`` (N, K). Columns of knots no command has
-    reached yet are exactly zero and are skipped; each row of ``phi`` excites its nonzero knots."""
+    muscle B's (column K + j) for every knot j of ``phi`` (N, K), into ``angles`` (N+1, 2K) and
+    ``rate`` (2K,). Columns of knots no command has reached yet are exactly zero and are skipped;
+    each row of ``phi`` excites its nonzero knots."""
     n, nx, kn = A.shape[0], A.shape[1], phi.shape[1]
     dx = np.zeros((nx, 2 * kn))
     nxt = np.zeros((nx, 2 * kn))
-    angles = np.zeros((n + 1, 2 * kn))
-    rate = np.zeros(2 * kn)
+    angles[:] = 0.0
+    rate[:] = 0.0
     reached = 0                      # knots 0 .. reached-1 have been excited
     for k in range(n):
         src = k - delay
@@ -87,19 +88,30 @@ def _forward_on_basis(A, B, delay, strike_index, phi):
                     break
         # nxt = A_k dx column by column, the knot index innermost (contiguous, vectorised); the
         # sum over l runs in the same order for every column
-        for i in range(nx):
+        if nx == 4:                  # the regulator-lag prior: one pass over the columns
+            a = A[k]
             for side in range(2):
-                lo = side * kn
-                a0 = A[k, i, 0]
-                for j in range(lo, lo + reached):
-                    nxt[i, j] = a0 * dx[0, j]
-                for l in range(1, nx):
-                    a = A[k, i, l]
+                for j in range(side * kn, side * kn + reached):
+                    d0, d1, d2, d3 = dx[0, j], dx[1, j], dx[2, j], dx[3, j]
+                    nxt[0, j] = a[0, 0] * d0 + a[0, 1] * d1 + a[0, 2] * d2 + a[0, 3] * d3
+                    nxt[1, j] = a[1, 0] * d0 + a[1, 1] * d1 + a[1, 2] * d2 + a[1, 3] * d3
+                    nxt[2, j] = a[2, 0] * d0 + a[2, 1] * d1 + a[2, 2] * d2 + a[2, 3] * d3
+                    nxt[3, j] = a[3, 0] * d0 + a[3, 1] * d1 + a[3, 2] * d2 + a[3, 3] * d3
+        else:
+            for i in range(nx):
+                for side in range(2):
+                    lo = side * kn
+                    a0 = A[k, i, 0]
                     for j in range(lo, lo + reached):
-                        nxt[i, j] += a * dx[l, j]
+                        nxt[i, j] = a0 * dx[0, j]
+                    for l in range(1, nx):
+                        a1 = A[k, i, l]
+                        for j in range(lo, lo + reached):
+                            nxt[i, j] += a1 * dx[l, j]
+        for i in range(nx):
             if src >= 0:
                 b0, b1 = B[k, i, 0], B[k, i, 1]
-                for j in range(reached):
+                for j in range(max(reached - 2, 0), reached):     # a hat row's nonzeros: its last two
                     w = phi[src, j]
                     if w != 0.0:
                         nxt[i, j] += b0 * w
@@ -164,12 +176,19 @@ class Linearisation:
         angles, rate = _forward(self.A, self.B, self.delay, self.strike_index, flat)
         return angles.reshape((self.n_steps + 1,) + tail), rate.reshape(tail)
 
-    def forward_on_basis(self, phi) -> tuple[np.ndarray, np.ndarray]:
+    def forward_on_basis(self, phi, out=None) -> tuple[np.ndarray, np.ndarray]:
         """``G0`` on a profile basis: the :meth:`forward` of the columns ``du[:, 0, j] = phi[:, j]``
         (muscle A, columns 0..K-1) and ``du[:, 1, K + j] = phi[:, j]`` (muscle B) for a basis
-        matrix ``phi`` (N', K) with N' >= N; returns angle rows (N+1, 2K) and the rate row (2K,)."""
+        matrix ``phi`` (N', K) with N' >= N; returns angle rows (N+1, 2K) and the rate row (2K,),
+        written into ``out`` (two C-contiguous arrays of those shapes) when given."""
         phi = np.ascontiguousarray(np.asarray(phi, dtype=float)[: self.n_steps])
-        return _forward_on_basis(self.A, self.B, self.delay, self.strike_index, phi)
+        p = 2 * phi.shape[1]
+        angles, rate = (np.empty((self.n_steps + 1, p)), np.empty(p)) if out is None else out
+        if angles.shape != (self.n_steps + 1, p) or rate.shape != (p,) or not angles.flags.c_contiguous:
+            raise ValueError(f"out: shapes {angles.shape}, {rate.shape} are not allowed; must be "
+                             f"C-contiguous ({self.n_steps + 1}, {p}) and ({p},)")
+        _forward_on_basis(self.A, self.B, self.delay, self.strike_index, phi, angles, rate)
+        return angles, rate
 
     def adjoint(self, w_angle, w_rate: float = 0.0) -> np.ndarray:
         """``G0^T w``: command gradient (N, 2) for output weights ``w_angle`` (N+1,) on the angle

@@ -215,10 +215,11 @@ def test_step_keeps_every_predicted_sample_inside_the_angle_limit():
     e = np.full(n, math.radians(10.0))
     grad, H = g_angle.T @ e, g_angle.T @ g_angle
     theta = np.full(p, 0.5 * (learner.p_low + learner.p_high))
-    free, _, _ = learner._solve_step(H + 1e-3 * np.trace(H) / p * np.eye(p), grad, theta, None)
+    free, _, _ = learner._solve_step(learner._factored(H + 1e-3 * np.trace(H) / p * np.eye(p)), grad, theta,
+                                     None)
     stride = learner._limit_stride
     assert np.max((y + g_angle @ free)[::stride]) > learner.angle_high + math.radians(1.0)   # the case bites
-    step, _, solved = learner._step_for(H, grad, theta, 1.0, None, g_angle, y)
+    step, _, solved = learner._step_for(learner._step_problem(H, grad), theta, 1.0, None, g_angle, y)
     applied = np.clip(theta + step, learner.p_low, learner.p_high) - theta
     assert solved
     assert np.max((y + g_angle @ applied)[::stride]) <= learner.angle_high + math.radians(0.01)
@@ -243,6 +244,8 @@ def test_box_qp_is_the_bounded_least_squares_minimiser():
     # the same QP written as min |L^T z - L^-1 b|^2 with A = L L^T; tolerance 1e-9 absolute
     from scipy.optimize import lsq_linear
 
+    from scipy.linalg import cho_factor
+
     from controllers.learning import box_qp
 
     rng = np.random.default_rng(11)
@@ -252,11 +255,38 @@ def test_box_qp_is_the_bounded_least_squares_minimiser():
         A = Q @ Q.T + 0.05 * n * np.eye(n)
         b = 5 * rng.standard_normal(n)
         low, high = -rng.random(n), rng.random(n)
-        z, converged = box_qp(A, b, low, high, start=None if case % 2 else rng.uniform(low, high))
+        start = None if case % 2 else rng.uniform(low, high)
+        factor = cho_factor(A) if case % 3 == 0 else None            # the caller's factor, or its own
+        z, converged = box_qp(A, b, low, high, start=start, factor=factor)
         L = np.linalg.cholesky(A)
         ref = lsq_linear(L.T, np.linalg.solve(L, b), bounds=(low, high), method="bvls", tol=1e-14).x
         assert converged
         np.testing.assert_allclose(z, ref, rtol=0, atol=1e-9)
+
+
+def test_box_qp_meets_its_optimality_conditions_on_ill_conditioned_matrices():
+    # KKT conditions of the bound-constrained convex QP (Nocedal & Wright 2006, ch. 16; cited from
+    # memory): zero gradient on free components, the gradient pointing out of the box at every
+    # bound; matrices of condition 1e4 ... 1e10 (a penalised piece of the step QP reaches 1e9),
+    # on both sides of BORDERED_RCOND. Tolerance: 1e-7 of |b| (derived: rounding of order
+    # cond * eps on the multipliers of the worst case).
+    from controllers.learning import box_qp
+
+    rng = np.random.default_rng(12)
+    for case, decades in enumerate((4, 6, 8, 10)):
+        n = 60
+        Q, _ = np.linalg.qr(rng.standard_normal((n, n)))
+        A = (Q * np.logspace(0, -decades, n)) @ Q.T
+        A = 0.5 * (A + A.T)
+        b = rng.standard_normal(n)
+        low, high = -0.2 * np.ones(n), 0.2 * np.ones(n)
+        z, converged = box_qp(A, b, low, high)
+        assert converged, decades
+        g = A @ z - b
+        free = (z > low) & (z < high)
+        tol = 1e-7 * np.linalg.norm(b)
+        assert np.max(np.abs(g[free]), initial=0.0) < tol, decades
+        assert np.all(g[z <= low] >= -tol) and np.all(g[z >= high] <= tol), decades
 
 
 def test_penalised_box_qp_reaches_the_penalty_minimum():
