@@ -432,9 +432,10 @@ class GradientLearner:
         return self._factored(A, overwrite=True, condition=bound), grad
 
     def _factored(self, A, overwrite: bool = False, condition: float | None = None):
-        """``(A_n, factor, unit, condition)``: ``A`` in units of 10 kPa (:data:`STEP_UNIT`) scaled to
-        unit mean diagonal (``A_n = A / unit``; ``overwrite``: in place), the Cholesky factor of
-        ``A_n``, and the bound of its condition number the caller knows (None: unknown)."""
+        """``(A_n, factor, unit, condition)``: ``A`` scaled to unit mean diagonal (``A_n = A / unit``;
+        ``overwrite``: in place; the step's unit :data:`STEP_UNIT` enters on the right-hand side),
+        the Cholesky factor of ``A_n``, and the bound of its condition number the caller knows
+        (None: unknown)."""
         unit = max(float(np.trace(A)) / A.shape[0], 1e-300)
         A_n = np.divide(A, unit, out=A if overwrite else None)
         upper = self._buffer("step_factor", A.shape, order="F")     # LAPACK's order: factored in place

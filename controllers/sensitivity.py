@@ -71,8 +71,10 @@ def _forward(A, B, delay, strike_index, du):
 def _forward_on_basis(A, B, delay, strike_index, phi, angles, rate):
     """:func:`_forward` for the basis columns: muscle A's command ``phi[:, j]`` (column j) and
     muscle B's (column K + j) for every knot j of ``phi`` (N, K), into ``angles`` (N+1, 2K) and
-    ``rate`` (2K,). Columns of knots no command has reached yet are exactly zero and are skipped;
-    each row of ``phi`` excites its nonzero knots."""
+    ``rate`` (2K,). ``phi`` is a hat basis (:class:`~controllers.basis.HatBasis`): each row's
+    nonzeros are at most two adjacent knots, moving forward row by row. Columns of knots no
+    command has reached yet are exactly zero and are skipped; each row of ``phi`` excites its
+    nonzero knots."""
     n, nx, kn = A.shape[0], A.shape[1], phi.shape[1]
     dx = np.zeros((nx, 2 * kn))
     nxt = np.zeros((nx, 2 * kn))
@@ -179,8 +181,9 @@ class Linearisation:
     def forward_on_basis(self, phi, out=None) -> tuple[np.ndarray, np.ndarray]:
         """``G0`` on a profile basis: the :meth:`forward` of the columns ``du[:, 0, j] = phi[:, j]``
         (muscle A, columns 0..K-1) and ``du[:, 1, K + j] = phi[:, j]`` (muscle B) for a basis
-        matrix ``phi`` (N', K) with N' >= N; returns angle rows (N+1, 2K) and the rate row (2K,),
-        written into ``out`` (two C-contiguous arrays of those shapes) when given."""
+        matrix ``phi`` (N', K) with N' >= N, a hat basis (:meth:`controllers.basis.HatBasis.matrix`);
+        returns angle rows (N+1, 2K) and the rate row (2K,), written into ``out`` (two C-contiguous
+        arrays of those shapes) when given."""
         phi = np.ascontiguousarray(np.asarray(phi, dtype=float)[: self.n_steps])
         p = 2 * phi.shape[1]
         angles, rate = (np.empty((self.n_steps + 1, p)), np.empty(p)) if out is None else out
